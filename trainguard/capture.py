@@ -1,0 +1,248 @@
+"""Recording a training run: the object behind the `trajectory` fixture.
+
+`Trajectory` knows nothing about pytest. It validates what the test hands it at the
+moment it is handed over (so a mistake points at the offending line) and builds a
+`Run` that the golden store and the comparison consume.
+"""
+
+from __future__ import annotations
+
+import numbers
+from typing import Any, Iterator
+
+import numpy as np
+
+from . import checksum
+from .errors import UsageError
+from .record import MetricSeries, Run, TensorRecord
+
+#: Default for `trainguard_max_values`: tensors up to this many elements keep their values.
+DEFAULT_MAX_VALUES = 65_536
+
+
+def _is_tensor(obj: Any) -> bool:
+    import sys
+
+    torch = sys.modules.get("torch")
+    return torch is not None and isinstance(obj, torch.Tensor)
+
+
+def _scalar(name: str, value: Any, step: int) -> float:
+    __tracebackhide__ = True
+    if _is_tensor(value):
+        if value.numel() != 1 or value.dim() > 1:
+            raise UsageError(
+                f"trajectory.log(step={step}, {name}=...): got a tensor of shape {tuple(value.shape)}; "
+                f"metrics are scalars. Log a reduction such as {name}=t.mean() or {name}=t.item()."
+            )
+        if value.is_complex():
+            raise UsageError(f"trajectory.log(step={step}, {name}=...): complex values are not metrics")
+        return float(value.detach().reshape(()).item())
+    if isinstance(value, np.ndarray):
+        if value.size != 1 or value.ndim > 1:
+            raise UsageError(
+                f"trajectory.log(step={step}, {name}=...): got an array of shape {value.shape}; metrics are scalars"
+            )
+        value = value.reshape(()).item()
+    if isinstance(value, (bool, np.bool_)):
+        return float(value)
+    if isinstance(value, numbers.Real):
+        return float(value)
+    raise UsageError(
+        f"trajectory.log(step={step}, {name}=...): {type(value).__name__} is not a scalar metric; "
+        "pass a Python number, a NumPy scalar or a one-element tensor"
+    )
+
+
+class Trajectory:
+    """Collects metrics by step and the final training state of one guarded test."""
+
+    def __init__(self, max_values: int = DEFAULT_MAX_VALUES, label: str = "trajectory") -> None:
+        self.max_values = max_values
+        self._label = label
+        self._steps: dict[str, list[int]] = {}
+        self._values: dict[str, list[float]] = {}
+        self._tensors: dict[str, TensorRecord] = {}
+        self._names_by_param: dict[int, str] = {}
+        self._state_calls = 0
+
+    # -- metrics -------------------------------------------------------------------
+    def log(self, step: int, **metrics: Any) -> None:
+        """Record scalar metrics at an integer training step."""
+        __tracebackhide__ = True
+        if isinstance(step, bool) or not isinstance(step, (numbers.Integral,)) and not (
+            _is_tensor(step) and step.numel() == 1 and not step.is_floating_point()
+        ):
+            raise UsageError(f"trajectory.log: step must be an integer, got {step!r}")
+        step = int(step)
+        if not metrics:
+            raise UsageError(f"trajectory.log(step={step}): no metrics given; write e.g. trajectory.log({step}, loss=loss)")
+        converted = {name: _scalar(name, value, step) for name, value in metrics.items()}
+        for name in converted:
+            steps = self._steps.get(name)
+            if steps:
+                last = steps[-1]
+                if step == last:
+                    raise UsageError(f"trajectory.log: metric {name!r} was already logged at step {step}; each step once")
+                if step < last:
+                    raise UsageError(
+                        f"trajectory.log: metric {name!r} went back from step {last} to step {step}; "
+                        "steps must increase for each metric"
+                    )
+        for name, value in converted.items():
+            self._steps.setdefault(name, []).append(step)
+            self._values.setdefault(name, []).append(value)
+
+    # -- final state ---------------------------------------------------------------
+    def state(self, model: Any = None, optimizer: Any = None, **named: Any) -> None:
+        """Record the final state: a module's parameters and buffers, an optimizer's state, named tensors.
+
+        Keyword arguments may be tensors, NumPy arrays, numbers, modules or optimizers;
+        modules and optimizers given by keyword are recorded under that keyword as prefix.
+        """
+        __tracebackhide__ = True
+        import torch
+
+        if model is None and optimizer is None and not named:
+            raise UsageError(
+                "trajectory.state(): nothing to record; pass a model, an optimizer=..., or named tensors"
+            )
+        if model is not None and not isinstance(model, torch.nn.Module):
+            raise UsageError(f"trajectory.state: model must be a torch.nn.Module, got {type(model).__name__}")
+        if optimizer is not None and not isinstance(optimizer, torch.optim.Optimizer):
+            raise UsageError(
+                f"trajectory.state: optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}"
+            )
+        self._state_calls += 1
+        pending: list[tuple[str, str, Any]] = []
+        # Register every module's parameter names first, so optimizers anywhere in the call resolve them.
+        if model is not None:
+            self._learn_names(model, "")
+        for key, value in named.items():
+            if isinstance(value, torch.nn.Module):
+                self._learn_names(value, key + ".")
+        if model is not None:
+            pending.extend(_module_entries(model, ""))
+        if optimizer is not None:
+            pending.extend(self._optimizer_entries(optimizer, ""))
+        for key, value in named.items():
+            if isinstance(value, torch.nn.Module):
+                pending.extend(_module_entries(value, key + "."))
+            elif isinstance(value, torch.optim.Optimizer):
+                pending.extend(self._optimizer_entries(value, key + "."))
+            elif _is_tensor(value) or isinstance(value, (np.ndarray, np.generic, numbers.Number)):
+                pending.append((key, "named", value))
+            else:
+                raise UsageError(
+                    f"trajectory.state({key}=...): {type(value).__name__} cannot be recorded; "
+                    "give a tensor, a NumPy array, a number, a module or an optimizer"
+                )
+        seen: set[str] = set()
+        for name, _, _ in pending:
+            if name in self._tensors or name in seen:
+                raise UsageError(
+                    f"trajectory.state: two entries are named {name!r}; rename the keyword argument "
+                    "or record the second model/optimizer under a keyword (e.g. critic=model2)"
+                )
+            seen.add(name)
+        for name, kind, value in pending:
+            self._tensors[name] = self._describe(name, kind, value)
+
+    def _learn_names(self, module: Any, prefix: str) -> None:
+        for name, param in module.named_parameters():
+            self._names_by_param.setdefault(id(param), prefix + name)
+
+    def _optimizer_entries(self, optimizer: Any, prefix: str) -> Iterator[tuple[str, str, Any]]:
+        for g, group in enumerate(optimizer.param_groups):
+            for key in sorted(group):
+                if key == "params":
+                    continue
+                yield from _hyper_entries(f"{prefix}param_groups.{g}.{key}", group[key])
+            for p, param in enumerate(group["params"]):
+                pname = self._names_by_param.get(id(param), f"group{g}.param{p}")
+                for key, value in sorted(optimizer.state.get(param, {}).items(), key=lambda kv: str(kv[0])):
+                    yield from _state_entries(f"{prefix}{pname}.{key}", value)
+
+    def _describe(self, name: str, kind: str, value: Any) -> TensorRecord:
+        if isinstance(value, (bool, np.bool_)):
+            array: Any = np.asarray(value, dtype=np.bool_)
+        elif isinstance(value, numbers.Integral):
+            array = np.asarray(int(value), dtype=np.int64)
+        elif isinstance(value, numbers.Real):
+            array = np.asarray(float(value), dtype=np.float64)
+        elif isinstance(value, (np.ndarray, np.generic)):
+            array = np.asarray(value)
+            if array.dtype == object or array.dtype.kind not in "biufc":
+                raise UsageError(f"trajectory.state({name}=...): array dtype {array.dtype} is not numeric")
+        else:
+            array = value
+        if _is_tensor(array):
+            dtype = str(array.dtype).replace("torch.", "")
+            shape = tuple(int(d) for d in array.shape)
+            numel = array.numel()
+        else:
+            dtype = str(array.dtype)
+            shape = tuple(int(d) for d in array.shape)
+            numel = int(array.size)
+        st = checksum.stats(array)
+        values = checksum.values_float64(array) if numel <= self.max_values else None
+        return TensorRecord(
+            name=name,
+            kind=kind,
+            dtype=dtype,
+            shape=shape,
+            sha256=checksum.sha256_hex(array),
+            min=st.min,
+            max=st.max,
+            mean=st.mean,
+            l2=st.l2,
+            nonfinite=st.nonfinite,
+            values=values,
+        )
+
+    # -- result --------------------------------------------------------------------
+    @property
+    def metric_names(self) -> list[str]:
+        return list(self._steps)
+
+    def to_run(self) -> Run:
+        metrics = {
+            name: MetricSeries(np.asarray(self._steps[name], dtype=np.int64), np.asarray(self._values[name]))
+            for name in sorted(self._steps)
+        }
+        tensors = {name: self._tensors[name] for name in sorted(self._tensors)}
+        return Run(metrics=metrics, tensors=tensors)
+
+
+def _module_entries(module: Any, prefix: str) -> Iterator[tuple[str, str, Any]]:
+    for name, param in module.named_parameters():
+        yield prefix + name, "parameter", param
+    for name, buf in module.named_buffers():
+        yield prefix + name, "buffer", buf
+
+
+def _hyper_entries(name: str, value: Any) -> Iterator[tuple[str, str, Any]]:
+    """Numeric optimizer hyperparameters (lr, momentum, betas...): flags and None are skipped."""
+    if isinstance(value, bool) or value is None:
+        return
+    if isinstance(value, numbers.Real):
+        yield name, "hyperparameter", value
+    elif _is_tensor(value) and value.numel() == 1:
+        yield name, "hyperparameter", value
+    elif isinstance(value, (tuple, list)):
+        for i, item in enumerate(value):
+            yield from _hyper_entries(f"{name}.{i}", item)
+
+
+def _state_entries(name: str, value: Any) -> Iterator[tuple[str, str, Any]]:
+    """Optimizer state: tensors and numbers, lists (L-BFGS history) flattened with an index."""
+    if value is None or isinstance(value, str):
+        return
+    if _is_tensor(value) or isinstance(value, (numbers.Number, np.ndarray)):
+        yield name, "optimizer", value
+    elif isinstance(value, (list, tuple)):
+        for i, item in enumerate(value):
+            yield from _state_entries(f"{name}.{i}", item)
+    elif isinstance(value, dict):
+        for key in sorted(value, key=str):
+            yield from _state_entries(f"{name}.{key}", value[key])

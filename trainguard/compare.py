@@ -1,0 +1,178 @@
+"""Comparing a new run with its golden.
+
+Every metric and tensor ends in one of three verdicts: identical (same bits), close
+(bits differ, values within tolerance) or changed. The run's outcome is the worst
+verdict. The comparison only computes; `report` turns it into text.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from .record import MetricSeries, Run, TensorRecord
+from .tolerance import Policy, Tolerance, bitwise_equal, within
+
+IDENTICAL = "identical"
+CLOSE = "within tolerance"
+CHANGED = "changed"
+_RANK = {IDENTICAL: 0, CLOSE: 1, CHANGED: 2}
+
+
+@dataclass
+class MetricDiff:
+    name: str
+    verdict: str
+    tolerance: Tolerance
+    steps_compared: int = 0
+    steps_off: int = 0
+    first_step: int | None = None  # first step outside tolerance (or first non-identical step when close)
+    golden: float = math.nan
+    new: float = math.nan
+    abs_diff: float = math.nan
+    rel_diff: float = math.nan
+    allowed: float = math.nan  # atol + rtol * |golden| at first_step
+    max_abs: float = 0.0
+    max_rel: float = 0.0
+    missing_steps: list[int] = field(default_factory=list)
+    added_steps: list[int] = field(default_factory=list)
+    note: str = ""  # e.g. "diverged to NaN at step 12", "metric missing"
+
+
+@dataclass
+class TensorDiff:
+    name: str
+    kind: str
+    verdict: str
+    reasons: list[str] = field(default_factory=list)
+    max_abs: float = math.nan
+    max_rel: float = math.nan
+    basis: str = ""  # "values" or "statistics"
+    elements_off: int = 0
+    numel: int = 0
+    golden_value: float | None = None  # set for one-element entries (hyperparameters, step counts)
+    new_value: float | None = None
+
+
+@dataclass
+class Comparison:
+    outcome: str
+    metrics: list[MetricDiff]
+    tensors: list[TensorDiff]
+    policy: Policy
+    golden_meta: dict[str, Any] = field(default_factory=dict)
+    new_meta: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def failed(self) -> bool:
+        return self.outcome == CHANGED
+
+
+def _rel(abs_diff: np.ndarray, golden: np.ndarray) -> np.ndarray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rel = abs_diff / np.abs(golden)
+    return np.where(abs_diff == 0, 0.0, rel)
+
+
+def _nonfinite_word(x: float) -> str:
+    return "NaN" if math.isnan(x) else ("+Inf" if x > 0 else "-Inf")
+
+
+def compare_metric(name: str, golden: MetricSeries | None, new: MetricSeries | None, policy: Policy) -> MetricDiff:
+    tol = policy.for_metric(name)
+    if golden is None or new is None:
+        return MetricDiff(name, CHANGED, tol, note="not logged by the new run" if new is None else "not in the golden")
+    common, gi, ni = np.intersect1d(golden.steps, new.steps, assume_unique=True, return_indices=True)
+    diff = MetricDiff(name, IDENTICAL, tol, steps_compared=int(common.size))
+    diff.missing_steps = [int(s) for s in np.setdiff1d(golden.steps, new.steps, assume_unique=True)]
+    diff.added_steps = [int(s) for s in np.setdiff1d(new.steps, golden.steps, assume_unique=True)]
+    g = golden.values[gi]
+    n = new.values[ni]
+    same = bitwise_equal(g, n)
+    if not same.all():
+        ok = same if policy.exact else (same | within(g, n, tol))
+        with np.errstate(invalid="ignore", over="ignore"):
+            absd = np.abs(n - g)
+        finite = np.isfinite(absd)
+        if finite.any():
+            diff.max_abs = float(absd[finite].max())
+            diff.max_rel = float(_rel(absd[finite], g[finite]).max())
+        diff.steps_off = int((~ok).sum())
+        bad = np.flatnonzero(~ok) if diff.steps_off else np.flatnonzero(~same)
+        first = int(bad[0])
+        diff.first_step = int(common[first])
+        diff.golden, diff.new = float(g[first]), float(n[first])
+        diff.abs_diff = float(absd[first])
+        diff.rel_diff = float(_rel(absd[first : first + 1], g[first : first + 1])[0])
+        diff.allowed = 0.0 if policy.exact else tol.atol + tol.rtol * abs(diff.golden)
+        diff.verdict = CHANGED if diff.steps_off else CLOSE
+        nf = np.flatnonzero(~np.isfinite(n) & np.isfinite(g))
+        if nf.size:
+            k = int(nf[0])
+            diff.note = f"diverged to {_nonfinite_word(float(n[k]))} at step {int(common[k])}"
+    if diff.missing_steps or diff.added_steps:
+        diff.verdict = CHANGED
+    return diff
+
+
+def compare_tensor(name: str, golden: TensorRecord | None, new: TensorRecord | None, policy: Policy) -> TensorDiff:
+    if golden is None or new is None:
+        present = golden or new
+        assert present is not None
+        reason = "not recorded by the new run" if new is None else "not in the golden"
+        return TensorDiff(name, present.kind, CHANGED, [reason], numel=present.numel)
+    diff = TensorDiff(name, golden.kind, IDENTICAL, numel=golden.numel)
+    if golden.dtype != new.dtype:
+        diff.reasons.append(f"dtype {golden.dtype} -> {new.dtype}")
+    if golden.shape != new.shape:
+        diff.reasons.append(f"shape {list(golden.shape)} -> {list(new.shape)}")
+    if diff.reasons:
+        diff.verdict = CHANGED
+        return diff
+    if golden.sha256 == new.sha256:
+        return diff
+    diff.reasons.append("checksum")
+    tol = policy.default
+    if golden.values is not None and new.values is not None and golden.values.shape == new.values.shape:
+        g, n = golden.values, new.values
+        diff.basis = "values"
+    else:
+        g = np.array([golden.min, golden.max, golden.mean, golden.l2, golden.nonfinite], dtype=np.float64)
+        n = np.array([new.min, new.max, new.mean, new.l2, new.nonfinite], dtype=np.float64)
+        diff.basis = "statistics"
+    ok = bitwise_equal(g, n) if policy.exact else (bitwise_equal(g, n) | within(g, n, tol))
+    with np.errstate(invalid="ignore", over="ignore"):
+        absd = np.abs(n - g)
+    finite = np.isfinite(absd)
+    if finite.any():
+        diff.max_abs = float(absd[finite].max())
+        diff.max_rel = float(_rel(absd[finite], g[finite]).max())
+    diff.elements_off = int((~ok).sum())
+    if diff.basis == "values" and g.size == 1:
+        diff.golden_value, diff.new_value = float(g[0]), float(n[0])
+    if policy.exact or diff.elements_off:
+        diff.verdict = CHANGED
+    else:
+        diff.verdict = CLOSE
+    nonfinite_new = int(np.sum(~np.isfinite(n) & np.isfinite(g)))
+    if nonfinite_new and diff.basis == "values":
+        diff.reasons.append(f"{nonfinite_new} value(s) became non-finite")
+    return diff
+
+
+def compare(golden: Run, new: Run, policy: Policy) -> Comparison:
+    """Compare `new` against `golden` under `policy`. Never raises for differences."""
+    metrics = [
+        compare_metric(name, golden.metrics.get(name), new.metrics.get(name), policy)
+        for name in sorted(set(golden.metrics) | set(new.metrics))
+    ]
+    tensors = [
+        compare_tensor(name, golden.tensors.get(name), new.tensors.get(name), policy)
+        for name in sorted(set(golden.tensors) | set(new.tensors))
+    ]
+    verdicts = [m.verdict for m in metrics] + [t.verdict for t in tensors]
+    outcome = max(verdicts, key=_RANK.__getitem__) if verdicts else IDENTICAL
+    return Comparison(outcome, metrics, tensors, policy, golden_meta=golden.meta, new_meta=new.meta)

@@ -1,0 +1,190 @@
+"""The pytest plugin: marker, `trajectory` fixture, options, and the terminal summary.
+
+A thin layer: it reads pytest's configuration, hands the run to `guard`, and turns the
+verdict into a test outcome. Loading it costs almost nothing: torch, NumPy and pyarrow
+are imported only when a guarded test actually runs.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import os
+import shlex
+from pathlib import Path
+from typing import Any, Iterator
+
+import pytest
+
+MARKER = "trainguard"
+FIXTURE = "trajectory"
+
+_SESSION_KEY = pytest.StashKey["GuardSession"]()
+_ITEM_KEY = pytest.StashKey["_Pending"]()
+
+
+def pytest_addoption(parser: pytest.Parser) -> None:
+    group = parser.getgroup("trainguard", "trainguard: golden files for seeded training runs")
+    group.addoption("--trainguard-bless", action="store_true", default=False,
+                    help="write or overwrite the golden files of the selected guarded tests instead of comparing")
+    group.addoption("--trainguard-reason", metavar="TEXT", default=None,
+                    help="why the goldens are being blessed; stored in the goldens written")
+    group.addoption("--trainguard-golden-dir", metavar="DIR", default=None,
+                    help="golden folder (default: ini trainguard_golden_dir, else 'golden' under rootdir)")
+    parser.addini("trainguard_golden_dir", "folder of golden files, relative to rootdir", default="golden")
+    parser.addini("trainguard_rtol", "default relative tolerance of guarded tests", default="")
+    parser.addini("trainguard_atol", "default absolute tolerance of guarded tests", default="")
+    parser.addini("trainguard_max_values", "tensors up to this many elements keep their values in the golden",
+                  default="")
+
+
+def pytest_configure(config: pytest.Config) -> None:
+    config.addinivalue_line(
+        "markers",
+        "trainguard(seed=0, rtol=None, atol=None, exact=False, metrics=None, deterministic=True): "
+        "guard a seeded training run with golden files (use the 'trajectory' fixture)",
+    )
+    session = GuardSession(config)
+    config.stash[_SESSION_KEY] = session
+
+
+class _Pending:
+    """What the fixture hands to the call-phase hook for one test."""
+
+    def __init__(self, trajectory: Any, settings: Any, fingerprint: dict[str, Any]) -> None:
+        self.trajectory = trajectory
+        self.settings = settings
+        self.fingerprint = fingerprint
+
+
+class GuardSession:
+    """Per-session state: where goldens live, and every verdict for the summary."""
+
+    def __init__(self, config: pytest.Config) -> None:
+        self.config = config
+        self.results: list[Any] = []
+
+    @property
+    def rootpath(self) -> Path:
+        return Path(self.config.rootpath)
+
+    def golden_dir(self) -> Path:
+        option = self.config.getoption("--trainguard-golden-dir")
+        raw = option if option else (self.config.getini("trainguard_golden_dir") or "golden")
+        path = Path(raw)
+        return path if path.is_absolute() else self.rootpath / path
+
+    def bless_command(self, nodeid: str) -> str:
+        parts = ["pytest", "--trainguard-bless", "--trainguard-reason", "'describe the intended change'"]
+        option = self.config.getoption("--trainguard-golden-dir")
+        if option:
+            parts += ["--trainguard-golden-dir", shlex.quote(option)]
+        parts.append(shlex.quote(nodeid))
+        return " ".join(parts)
+
+
+def _fail(message: str) -> None:
+    __tracebackhide__ = True
+    pytest.fail(message, pytrace=False)
+
+
+@pytest.fixture
+def trajectory(request: pytest.FixtureRequest) -> Iterator[Any]:
+    """Seeds every RNG, turns on deterministic mode, records the run; restores all globals afterwards."""
+    from .capture import DEFAULT_MAX_VALUES, Trajectory
+    from .determinism import GlobalState, guarded_setup
+    from .errors import UsageError
+    from .fingerprint import fingerprint
+    from .settings import from_marker, parse_ini_float, parse_ini_int
+
+    config = request.config
+    marker = request.node.get_closest_marker(MARKER)
+    try:
+        settings = from_marker(
+            marker.args if marker else (),
+            marker.kwargs if marker else {},
+            ini_rtol=parse_ini_float("trainguard_rtol", config.getini("trainguard_rtol")),
+            ini_atol=parse_ini_float("trainguard_atol", config.getini("trainguard_atol")),
+        )
+        max_values = parse_ini_int("trainguard_max_values", config.getini("trainguard_max_values"), DEFAULT_MAX_VALUES)
+    except UsageError as exc:
+        _fail(f"{request.node.nodeid}: {exc}")
+    saved = GlobalState.capture()
+    try:
+        guarded_setup(settings.seed, settings.deterministic)
+        traj = Trajectory(max_values=max_values)
+        request.node.stash[_ITEM_KEY] = _Pending(traj, settings, fingerprint())
+        yield traj
+    finally:
+        saved.restore()
+
+
+@pytest.hookimpl(wrapper=True)
+def pytest_runtest_call(item: pytest.Item) -> Iterator[None]:
+    marker = item.get_closest_marker(MARKER)
+    if marker is not None and FIXTURE not in getattr(item, "fixturenames", ()):
+        _fail(f"{item.nodeid} is marked @pytest.mark.trainguard but does not use the 'trajectory' fixture; "
+              "add a 'trajectory' argument to the test and log to it")
+    try:
+        result = yield
+    except RuntimeError as exc:
+        from .determinism import is_nondeterminism_error
+
+        if FIXTURE in getattr(item, "fixturenames", ()) and is_nondeterminism_error(exc):
+            _fail(f"{item.nodeid}: torch raised in deterministic mode, which trainguard turns on for guarded tests:\n"
+                  f"  {str(exc).strip().splitlines()[0]}\n"
+                  "hint: use an op with a deterministic implementation, or accept run-to-run noise with "
+                  "@pytest.mark.trainguard(deterministic='warn') (warns) or deterministic=False, and a tolerance")
+        raise
+    pending = item.stash.get(_ITEM_KEY, None)
+    if pending is not None:
+        _finish(item, pending)
+    return result
+
+
+def _finish(item: pytest.Item, pending: _Pending) -> None:
+    __tracebackhide__ = True
+    from . import guard, paths
+
+    session: GuardSession = item.config.stash[_SESSION_KEY]
+    traj = pending.trajectory
+    settings = pending.settings
+    run = traj.to_run()
+    if run.is_empty:
+        _fail(f"{item.nodeid}: the guarded test recorded nothing; call trajectory.log(step, loss=...) "
+              "or trajectory.state(model, optimizer=opt) in it")
+    unknown = sorted(set(settings.policy.metrics or {}) - set(run.metrics))
+    if unknown:
+        _fail(f"{item.nodeid}: the marker's metrics= names {', '.join(map(repr, unknown))}, which the test never "
+              f"logged (logged: {', '.join(run.metrics) or 'none'}); fix the name in the marker")
+    bless = item.config.getoption("--trainguard-bless")
+    run.meta = {
+        "nodeid": item.nodeid,
+        "seed": settings.seed,
+        "deterministic": settings.deterministic,
+        "tolerances": settings.policy.to_json(),
+        "max_values": traj.max_values,
+        "fingerprint": pending.fingerprint,
+        "blessed_at": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "reason": item.config.getoption("--trainguard-reason") or "",
+    }
+    folder = paths.golden_folder(session.golden_dir(), item.nodeid)
+    if bless:
+        result = guard.bless(item.nodeid, run, folder, settings.policy, base=session.rootpath)
+    else:
+        result = guard.check(item.nodeid, run, folder, settings.policy, session.bless_command(item.nodeid),
+                             base=session.rootpath)
+    session.results.append(result)
+    item.user_properties.append(("trainguard", result.outcome))
+    if result.failed:
+        _fail(result.message)
+
+
+def pytest_terminal_summary(terminalreporter: Any, exitstatus: int, config: pytest.Config) -> None:
+    from_stash = config.stash.get(_SESSION_KEY, None)
+    if from_stash is None or not from_stash.results:
+        return
+    from .summary import summary_lines
+
+    terminalreporter.write_sep("=", "trainguard")
+    for line in summary_lines(from_stash.results):
+        terminalreporter.write_line(line)

@@ -1,0 +1,62 @@
+"""The in-memory form of one guarded run: what gets stored, read back and compared.
+
+A `Run` is the single value that flows through trainguard: the capture layer builds one,
+the golden store writes and reads one, the comparison takes two. Keeping it free of torch
+and pytest lets every later stage work on goldens without either.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+
+@dataclass
+class MetricSeries:
+    """One metric's values by step, steps strictly increasing."""
+
+    steps: np.ndarray  # int64
+    values: np.ndarray  # float64
+
+    def __post_init__(self) -> None:
+        self.steps = np.asarray(self.steps, dtype=np.int64)
+        self.values = np.asarray(self.values, dtype=np.float64)
+
+
+@dataclass
+class TensorRecord:
+    """What a golden keeps of one tensor or number of the final state."""
+
+    name: str
+    kind: str  # "parameter", "buffer", "optimizer", "hyperparameter" or "named"
+    dtype: str
+    shape: tuple[int, ...]
+    sha256: str
+    min: float
+    max: float
+    mean: float
+    l2: float
+    nonfinite: int
+    values: np.ndarray | None = None  # flat float64, None when over the stored-values limit
+
+    @property
+    def numel(self) -> int:
+        n = 1
+        for d in self.shape:
+            n *= int(d)
+        return n
+
+
+@dataclass
+class Run:
+    """Everything recorded by one guarded test, plus the metadata stored beside it."""
+
+    metrics: dict[str, MetricSeries] = field(default_factory=dict)
+    tensors: dict[str, TensorRecord] = field(default_factory=dict)
+    meta: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def is_empty(self) -> bool:
+        return not self.metrics and not self.tensors
