@@ -230,6 +230,20 @@ def _check_metadata(path: Path, raw: dict[bytes, bytes]) -> dict[str, Any]:
     return meta
 
 
+def read_metrics(path: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_BYTES) -> tuple[dict[str, MetricSeries], dict[str, Any]]:
+    """Read one `metrics.parquet`: the series by metric name, and the file's metadata."""
+    path = Path(path)
+    table, meta = _read_table(path, _schemas()[0], max_bytes)
+    return _metrics_from_table(path, table), meta
+
+
+def read_state(path: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_BYTES) -> tuple[dict[str, TensorRecord], dict[str, Any]]:
+    """Read one `state.parquet`: the records by tensor name, and the file's metadata."""
+    path = Path(path)
+    table, meta = _read_table(path, _schemas()[1], max_bytes)
+    return _tensors_from_table(path, table), meta
+
+
 def read_run(folder: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_BYTES) -> Run:
     """Read a golden (or result) folder. Raises GoldenMissingError or GoldenCorruptError."""
     folder = Path(folder)
@@ -237,13 +251,19 @@ def read_run(folder: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_B
         raise GoldenCorruptError(folder, "is a symbolic link; golden folders must be real folders")
     if not exists(folder):
         raise GoldenMissingError(folder, "no golden here")
-    metrics_schema, state_schema = _schemas()
-    mtable, meta = _read_table(folder / METRICS_FILE, metrics_schema, max_bytes)
-    stable, smeta = _read_table(folder / STATE_FILE, state_schema, max_bytes)
-    run = Run(meta=meta)
-    run.metrics = _metrics_from_table(folder / METRICS_FILE, mtable)
-    run.tensors = _tensors_from_table(folder / STATE_FILE, stable)
-    return run
+    metrics, meta = read_metrics(folder / METRICS_FILE, max_bytes)
+    tensors, _ = read_state(folder / STATE_FILE, max_bytes)
+    return Run(metrics=metrics, tensors=tensors, meta=meta)
+
+
+def find_goldens(root: str | os.PathLike[str]) -> list[Path]:
+    """Every golden folder below `root` (folders holding a golden file), sorted, symlinks not followed."""
+    found = []
+    for dirpath, dirnames, filenames in os.walk(root, followlinks=False):
+        dirnames.sort()
+        if METRICS_FILE in filenames or STATE_FILE in filenames:
+            found.append(Path(dirpath))
+    return sorted(found)
 
 
 def _metrics_from_table(path: Path, table: Any) -> dict[str, MetricSeries]:
