@@ -65,6 +65,7 @@ class Trajectory:
         self._tensors: dict[str, TensorRecord] = {}
         self._names_by_param: dict[int, str] = {}
         self._state_calls = 0
+        self._tracer: Any = None
 
     # -- metrics -------------------------------------------------------------------
     def log(self, step: int, **metrics: Any) -> None:
@@ -77,7 +78,9 @@ class Trajectory:
         step = int(step)
         if not metrics:
             raise UsageError(f"trajectory.log(step={step}): no metrics given; write e.g. trajectory.log({step}, loss=loss)")
-        converted = {name: _scalar(name, value, step) for name, value in metrics.items()}
+        converted = {}
+        for name, value in metrics.items():  # a loop, not a comprehension: its frame could not hide itself
+            converted[name] = _scalar(name, value, step)
         for name in converted:
             steps = self._steps.get(name)
             if steps:
@@ -200,18 +203,46 @@ class Trajectory:
             values=values,
         )
 
-    # -- result --------------------------------------------------------------------
-    @property
-    def metric_names(self) -> list[str]:
-        return list(self._steps)
+    # -- per-step trace ------------------------------------------------------------
+    def watch(self, model: Any, optimizer: Any) -> None:
+        """Trace every optimizer step: inputs, outputs and loss, gradients, updated parameters and state.
 
+        The trace lets a failure report name the first step and stage (data, forward,
+        backward, update) where the run departs from its golden. Call it once, before training.
+        """
+        __tracebackhide__ = True
+        import torch
+
+        from .trace import Tracer
+
+        if self._tracer is not None:
+            raise UsageError("trajectory.watch: already watching; call it once per test")
+        if not isinstance(model, torch.nn.Module):
+            raise UsageError(f"trajectory.watch: model must be a torch.nn.Module, got {type(model).__name__}")
+        if not isinstance(optimizer, torch.optim.Optimizer):
+            raise UsageError(
+                f"trajectory.watch: optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
+        self._learn_names(model, "")
+        self._tracer = Tracer(
+            model, optimizer,
+            state_entries=lambda opt: self._optimizer_entries(opt, ""),
+            param_names=lambda p: self._names_by_param.get(id(p), "unnamed"),
+        )
+
+    def close(self) -> None:
+        """Remove the trace's hooks (the fixture calls this after every test)."""
+        if self._tracer is not None:
+            self._tracer.close()
+
+    # -- result --------------------------------------------------------------------
     def to_run(self) -> Run:
         metrics = {
             name: MetricSeries(np.asarray(self._steps[name], dtype=np.int64), np.asarray(self._values[name]))
             for name in sorted(self._steps)
         }
         tensors = {name: self._tensors[name] for name in sorted(self._tensors)}
-        return Run(metrics=metrics, tensors=tensors)
+        trace = list(self._tracer.entries) if self._tracer is not None else None
+        return Run(metrics=metrics, tensors=tensors, trace=trace)
 
 
 def _module_entries(module: Any, prefix: str) -> Iterator[tuple[str, str, Any]]:
@@ -226,7 +257,9 @@ def _hyper_entries(name: str, value: Any) -> Iterator[tuple[str, str, Any]]:
     if isinstance(value, bool) or value is None:
         return
     if isinstance(value, numbers.Real):
-        yield name, "hyperparameter", value
+        # As float64 always: Adam's default weight_decay is the int 0, AdamW's the float 0.0,
+        # and the same number must not read as a dtype change.
+        yield name, "hyperparameter", float(value)
     elif _is_tensor(value) and value.numel() == 1:
         yield name, "hyperparameter", value
     elif isinstance(value, (tuple, list)):

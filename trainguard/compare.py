@@ -65,6 +65,7 @@ class Comparison:
     policy: Policy
     golden_meta: dict[str, Any] = field(default_factory=dict)
     new_meta: dict[str, Any] = field(default_factory=dict)
+    trace: Any = None  # attribution.TraceDiff when both runs carry a trace
 
     @property
     def failed(self) -> bool:
@@ -175,4 +176,9 @@ def compare(golden: Run, new: Run, policy: Policy) -> Comparison:
     ]
     verdicts = [m.verdict for m in metrics] + [t.verdict for t in tensors]
     outcome = max(verdicts, key=_RANK.__getitem__) if verdicts else IDENTICAL
-    return Comparison(outcome, metrics, tensors, policy, golden_meta=golden.meta, new_meta=new.meta)
+    trace = None
+    if golden.trace is not None and new.trace is not None:
+        from .attribution import compare_traces
+
+        trace = compare_traces(golden.trace, new.trace, policy.default, exact=policy.exact)
+    return Comparison(outcome, metrics, tensors, policy, golden_meta=golden.meta, new_meta=new.meta, trace=trace)

@@ -27,11 +27,12 @@ from typing import Any
 import numpy as np
 
 from .errors import GoldenCorruptError, GoldenMissingError, GoldenVersionError
-from .record import MetricSeries, Run, TensorRecord
+from .record import STAGE_ORDER, MetricSeries, Run, TensorRecord, TraceEntry
 
 FORMAT_VERSION = 1
 METRICS_FILE = "metrics.parquet"
 STATE_FILE = "state.parquet"
+TRACE_FILE = "trace.parquet"
 KEY_VERSION = b"trainguard.format_version"
 KEY_META = b"trainguard.meta"
 TEMP_PREFIX = ".tmp-"
@@ -62,6 +63,28 @@ def _schemas() -> tuple[Any, Any]:
         ]
     )
     return metrics, state
+
+
+def _trace_schema() -> Any:
+    import pyarrow as pa
+
+    return pa.schema(
+        [
+            ("step", pa.int64()),
+            ("stage", pa.string()),
+            ("seq", pa.int64()),
+            ("call", pa.int64()),
+            ("name", pa.string()),
+            ("dtype", pa.string()),
+            ("shape", pa.list_(pa.int64())),
+            ("sha256", pa.string()),
+            ("min", pa.float64()),
+            ("max", pa.float64()),
+            ("mean", pa.float64()),
+            ("l2", pa.float64()),
+            ("nonfinite", pa.int64()),
+        ]
+    )
 
 
 # -- writing -------------------------------------------------------------------------
@@ -117,6 +140,17 @@ def _state_table(run: Run) -> Any:
     return pa.Table.from_arrays(arrays, schema=schema.with_metadata(_metadata(run.meta)))
 
 
+def _trace_table(run: Run) -> Any:
+    import pyarrow as pa
+
+    schema = _trace_schema()
+    entries = run.trace or []
+    columns = {f.name: [getattr(e, f.name) for e in entries] for f in schema}
+    columns["shape"] = [list(s) for s in columns["shape"]]
+    arrays = [pa.array(columns[f.name], type=f.type) for f in schema]
+    return pa.Table.from_arrays(arrays, schema=schema.with_metadata(_metadata(run.meta)))
+
+
 def _write_table_atomic(table: Any, path: Path, **options: Any) -> None:
     import pyarrow.parquet as pq
 
@@ -146,6 +180,13 @@ def write_run(folder: str | os.PathLike[str], run: Run) -> None:
         use_byte_stream_split=["value"],
     )
     _write_table_atomic(_state_table(run), folder / STATE_FILE, compression="zstd", use_dictionary=["kind", "dtype"])
+    trace_path = folder / TRACE_FILE
+    if run.trace is not None:
+        _write_table_atomic(_trace_table(run), trace_path, compression="zstd",
+                            use_dictionary=["stage", "name", "dtype"],
+                            use_byte_stream_split=["min", "max", "mean", "l2"])
+    elif trace_path.exists():
+        trace_path.unlink()  # a golden without a trace must not keep an older run's trace
 
 
 def _clean_temp_files(folder: Path) -> None:
@@ -253,7 +294,26 @@ def read_run(folder: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_B
         raise GoldenMissingError(folder, "no golden here")
     metrics, meta = read_metrics(folder / METRICS_FILE, max_bytes)
     tensors, _ = read_state(folder / STATE_FILE, max_bytes)
-    return Run(metrics=metrics, tensors=tensors, meta=meta)
+    trace = read_trace(folder / TRACE_FILE, max_bytes) if (folder / TRACE_FILE).exists() else None
+    return Run(metrics=metrics, tensors=tensors, meta=meta, trace=trace)
+
+
+def read_trace(path: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_BYTES) -> list[TraceEntry]:
+    """Read one `trace.parquet` into entries in recording order."""
+    path = Path(path)
+    table, _ = _read_table(path, _trace_schema(), max_bytes)
+    entries = []
+    for i, row in enumerate(table.to_pylist()):
+        if any(row[k] is None for k in ("step", "stage", "seq", "call", "name", "dtype", "shape", "sha256", "nonfinite")):
+            raise GoldenCorruptError(path, f"row {i} has empty (null) cells")
+        if row["stage"] not in STAGE_ORDER:
+            raise GoldenCorruptError(path, f"row {i} has unknown stage {row['stage']!r}")
+        floats = [math.nan if row[c] is None else float(row[c]) for c in _STATE_FLOAT_COLUMNS]
+        entries.append(TraceEntry(int(row["step"]), row["stage"], int(row["seq"]), int(row["call"]), row["name"],
+                                  row["dtype"],
+                                  tuple(int(d) for d in row["shape"] if d is not None), row["sha256"],
+                                  *floats, int(row["nonfinite"])))
+    return entries
 
 
 def find_goldens(root: str | os.PathLike[str]) -> list[Path]:

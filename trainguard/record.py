@@ -49,6 +49,30 @@ class TensorRecord:
         return n
 
 
+#: Training stages of one optimizer step, in the order they happen.
+STAGES = ("data", "forward", "backward", "update")
+STAGE_ORDER = {s: i for i, s in enumerate(STAGES)}
+
+
+@dataclass
+class TraceEntry:
+    """One tensor seen at one stage of one optimizer step (see `trace`)."""
+
+    step: int
+    stage: str
+    seq: int  # order of recording within the step
+    call: int  # forward/backward evaluation within the step (several for closure optimizers such as L-BFGS)
+    name: str
+    dtype: str
+    shape: tuple[int, ...]
+    sha256: str
+    min: float
+    max: float
+    mean: float
+    l2: float
+    nonfinite: int
+
+
 @dataclass
 class Run:
     """Everything recorded by one guarded test, plus the metadata stored beside it."""
@@ -56,6 +80,7 @@ class Run:
     metrics: dict[str, MetricSeries] = field(default_factory=dict)
     tensors: dict[str, TensorRecord] = field(default_factory=dict)
     meta: dict[str, Any] = field(default_factory=dict)
+    trace: list[TraceEntry] | None = None  # present when the test called trajectory.watch
 
     @property
     def is_empty(self) -> bool:

@@ -100,6 +100,8 @@ def describe_comparison(cmp: Comparison) -> str:
     p = cmp.policy
     mode = "exact (bitwise)" if p.exact else p.default.describe()
     out.append(f"outcome: {cmp.outcome}   tolerance: {mode}")
+    if cmp.trace is not None:
+        out.append(cmp.trace.summary())
 
     metric_rows = []
     identical_metrics = 0
@@ -143,8 +145,8 @@ def describe_comparison(cmp: Comparison) -> str:
         reasons = list(t.reasons)
         if t.golden_value is not None:
             reasons.append(f"value {fmt(t.golden_value)} -> {fmt(t.new_value)}")
-        tensor_rows.append([t.name, t.kind, t.verdict, ", ".join(reasons), short(t.max_abs), short(t.max_rel), off,
-                            t.basis or "-"])
+        sizes = [short(t.max_abs), short(t.max_rel)] if t.basis else ["-", "-"]
+        tensor_rows.append([t.name, t.kind, t.verdict, ", ".join(reasons), *sizes, off, t.basis or "-"])
     if tensor_rows:
         out.append("")
         out.append("state:")
