@@ -136,7 +136,7 @@ def cmd_show(args: argparse.Namespace) -> int:
         try:
             run = golden.read_run(folder)
         except TrainguardError as exc:
-            rows.append([str(folder.relative_to(path)), "-", "-", "-", "-", f"unreadable: {exc.problem if hasattr(exc, 'problem') else exc}"])
+            rows.append([str(folder.relative_to(path)), "-", "-", "-", "-", f"unreadable: {getattr(exc, 'problem', exc)}"])
             continue
         steps = max((len(s.steps) for s in run.metrics.values()), default=0)
         rows.append([str(folder.relative_to(path)), len(run.metrics), steps, len(run.tensors),
@@ -144,6 +144,80 @@ def cmd_show(args: argparse.Namespace) -> int:
     print(f"{len(found)} golden folder(s) under {path} (show one for details: trainguard show FOLDER):")
     print(table(["golden", "metrics", "steps", "state entries", "blessed at", "reason"], rows))
     return 0
+
+
+# -- bless --from / diff -------------------------------------------------------------
+
+
+def default_golden_dir(start: Path | None = None) -> Path:
+    """The golden dir pytest would use from this folder: its ini option, else 'golden'."""
+    import configparser
+
+    start = start or Path.cwd()
+    for folder in (start, *start.parents):
+        pyproject = folder / "pyproject.toml"
+        if pyproject.is_file():
+            try:
+                import tomllib
+            except ImportError:  # Python 3.10: no TOML reader in the standard library
+                tomllib = None  # type: ignore[assignment]
+            if tomllib is not None:
+                try:
+                    data = tomllib.loads(pyproject.read_text(encoding="utf-8"))
+                except (ValueError, OSError):
+                    data = {}
+                ini = data.get("tool", {}).get("pytest", {}).get("ini_options")
+                if isinstance(ini, dict):
+                    return folder / str(ini.get("trainguard_golden_dir", "golden"))
+        for name, section in (("pytest.ini", "pytest"), ("tox.ini", "pytest"), ("setup.cfg", "tool:pytest")):
+            path = folder / name
+            if path.is_file():
+                parser = configparser.ConfigParser()
+                try:
+                    parser.read(path, encoding="utf-8")
+                except configparser.Error:
+                    continue
+                if parser.has_section(section):
+                    return folder / parser.get(section, "trainguard_golden_dir", fallback="golden")
+    return start / "golden"
+
+
+def cmd_bless(args: argparse.Namespace) -> int:
+    from .results import adopt
+
+    golden_dir = Path(args.golden_dir) if args.golden_dir else default_golden_dir()
+    adoptions = adopt(args.source, golden_dir, args.nodeids, reason=args.reason or "", dry_run=args.dry_run)
+    from .report import table
+
+    verb = "would adopt" if args.dry_run else "adopted"
+    print(f"{verb} {len(adoptions)} result(s) from {args.source} into {golden_dir}:")
+    print(table(["golden", "test", "from"], [[a.outcome, a.nodeid, str(a.source)] for a in adoptions]))
+    if not args.dry_run:
+        print("review and commit them, e.g.: git add " + str(golden_dir))
+    return 0
+
+
+def cmd_diff(args: argparse.Namespace) -> int:
+    from . import golden
+    from .compare import compare
+    from .report import describe_comparison
+    from .tolerance import DEFAULT_ATOL, DEFAULT_RTOL, Policy, Tolerance
+
+    a = golden.read_run(args.a)
+    b = golden.read_run(args.b)
+    tol = a.meta.get("tolerances") or {}
+    per_metric = {k: Tolerance(float(v.get("rtol", DEFAULT_RTOL)), float(v.get("atol", DEFAULT_ATOL)))
+                  for k, v in (tol.get("metrics") or {}).items() if isinstance(v, dict)}
+    policy = Policy(
+        default=Tolerance(args.rtol if args.rtol is not None else float(tol.get("rtol", DEFAULT_RTOL)),
+                          args.atol if args.atol is not None else float(tol.get("atol", DEFAULT_ATOL))),
+        exact=bool(args.exact or tol.get("exact", False)),
+        metrics={} if (args.rtol is not None or args.atol is not None) else per_metric,
+    )
+    cmp = compare(a, b, policy)
+    print(f"trainguard diff: {args.a} (reference) vs {args.b}")
+    print(describe_comparison(cmp))
+    return 1 if cmp.failed else 0
 
 
 # -- demo ------------------------------------------------------------------------------
@@ -171,6 +245,21 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("show", help="show a golden folder or file (or list the goldens under a folder)")
     p.add_argument("path", help="a golden folder, a metrics.parquet/state.parquet file, or a golden dir")
     p.set_defaults(func=cmd_show)
+    p = sub.add_parser("bless", help="adopt saved results (pytest --trainguard-results DIR) as goldens, without re-running")
+    p.add_argument("--from", dest="source", required=True, metavar="DIR", help="results folder, e.g. a CI artifact")
+    p.add_argument("nodeids", nargs="*", metavar="NODEID",
+                   help="tests to adopt (a node id, or a file/class prefix); default: all results in DIR")
+    p.add_argument("--reason", help="why; stored in the goldens")
+    p.add_argument("--golden-dir", help="golden folder (default: the ini option trainguard_golden_dir, else ./golden)")
+    p.add_argument("--dry-run", action="store_true", help="list what would be adopted, write nothing")
+    p.set_defaults(func=cmd_bless)
+    p = sub.add_parser("diff", help="compare two goldens or result folders with the plugin's report")
+    p.add_argument("a", help="reference folder (e.g. a golden)")
+    p.add_argument("b", help="folder to compare (e.g. a result)")
+    p.add_argument("--rtol", type=float, help="relative tolerance (default: the reference's)")
+    p.add_argument("--atol", type=float, help="absolute tolerance (default: the reference's)")
+    p.add_argument("--exact", action="store_true", help="demand bitwise identity")
+    p.set_defaults(func=cmd_diff)
     p = sub.add_parser("env", help="print this machine's environment fingerprint")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_env)
@@ -188,6 +277,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except TrainguardError as exc:
         print(f"trainguard {args.command}: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    except BrokenPipeError:  # output piped into head or less, closed early
+        sys.stderr.close()
+        return 0
     except KeyboardInterrupt:
         print("trainguard: interrupted", file=sys.stderr)
         return 130

@@ -8,13 +8,11 @@ and returns a `GuardResult` whose `message` is ready to show.
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
-
 from . import golden
 from .compare import CHANGED, CLOSE, IDENTICAL, Comparison, compare
-from .errors import GoldenCorruptError, GoldenMissingError, TrainguardError
+from .errors import GoldenMissingError, TrainguardError
 from .record import Run
 from .report import failure_report
 from .tolerance import Policy
@@ -39,7 +37,8 @@ class GuardResult:
     blessing: bool = False
     comparison: Comparison | None = None
     message: str = ""
-    extra: dict[str, Any] = field(default_factory=dict)
+    run: Run | None = None  # the new run (checks only)
+    reference: Run | None = None  # the golden it was compared with, when readable
 
     @property
     def failed(self) -> bool:
@@ -63,18 +62,18 @@ def check(nodeid: str, run: Run, folder: Path, policy: Policy, bless_command: st
         reference = golden.read_run(folder, max_bytes=max_bytes)
     except GoldenMissingError:
         return GuardResult(
-            nodeid, shown, NO_GOLDEN,
+            nodeid, shown, NO_GOLDEN, run=run,
             message=(f"trainguard: {nodeid} has no golden yet (looked in {shown}).\n"
                      f"A guarded test never creates its golden silently. Record it with:\n  {bless_command}"),
         )
     except TrainguardError as exc:
         return GuardResult(
-            nodeid, shown, UNREADABLE,
+            nodeid, shown, UNREADABLE, run=run,
             message=(f"trainguard: the golden of {nodeid} cannot be used:\n  {exc}\n"
                      f"It was left untouched. If you want to replace it with this run, re-bless:\n  {bless_command}"),
         )
     cmp = compare(reference, run, policy)
-    result = GuardResult(nodeid, shown, cmp.outcome, comparison=cmp)
+    result = GuardResult(nodeid, shown, cmp.outcome, comparison=cmp, run=run, reference=reference)
     if cmp.failed:
         result.message = failure_report(nodeid, shown, cmp, bless_command)
     return result
@@ -88,7 +87,7 @@ def bless(nodeid: str, run: Run, folder: Path, policy: Policy, base: Path | None
         outcome = BLESSED_CHANGED
         try:
             previous = golden.read_run(folder)
-        except (GoldenCorruptError, TrainguardError):
+        except TrainguardError:  # an unreadable golden is simply replaced by a bless
             previous = None
         if previous is not None and _same_golden(previous, run, policy):
             return GuardResult(nodeid, shown, BLESSED_UNCHANGED, blessing=True)
@@ -98,7 +97,10 @@ def bless(nodeid: str, run: Run, folder: Path, policy: Policy, base: Path | None
 
 def _same_golden(previous: Run, run: Run, policy: Policy) -> bool:
     exact = Policy(default=policy.default, exact=True, metrics=policy.metrics)
-    if compare(previous, run, exact).outcome != IDENTICAL:
+    cmp = compare(previous, run, exact)
+    if cmp.outcome != IDENTICAL or (previous.trace is None) != (run.trace is None):
+        return False
+    if cmp.trace is not None and cmp.trace.first_bitwise is not None:
         return False
     keys = ("seed", "tolerances", "deterministic")
     return all(previous.meta.get(k) == run.meta.get(k) for k in keys)

@@ -34,7 +34,7 @@ def safe_component(text: str) -> str:
     """One path component: escaped, never empty, '.', '..', hidden, reserved or too long."""
     name = _escape(text)
     if not name:
-        name = "%00empty"
+        name = "%empty"  # '%' + lowercase is never produced by escaping ("%00empty" was: the text "\x00empty")
     if name.startswith("."):
         name = "%2E" + name[1:]
     if name.endswith("."):
@@ -43,8 +43,11 @@ def safe_component(text: str) -> str:
         name = f"%{ord(name[0]):02X}" + name[1:]
     if len(name) > MAX_COMPONENT:
         digest = hashlib.sha256(text.encode("utf-8", "surrogatepass")).hexdigest()[:16]
-        name = name[: MAX_COMPONENT - 18] + "~" + digest
-        name = name.replace("%~", "~").rstrip(".")  # never end on a dangling escape
+        head = name[: MAX_COMPONENT - 18]
+        cut = head.rfind("%", len(head) - 2)
+        if cut != -1:  # never end on a dangling escape such as "%E"
+            head = head[:cut]
+        name = head + "~" + digest
     return name
 
 

@@ -30,6 +30,11 @@ def pytest_addoption(parser: pytest.Parser) -> None:
                     help="why the goldens are being blessed; stored in the goldens written")
     group.addoption("--trainguard-golden-dir", metavar="DIR", default=None,
                     help="golden folder (default: ini trainguard_golden_dir, else 'golden' under rootdir)")
+    group.addoption("--trainguard-results", metavar="DIR", default=None,
+                    help="save the new run of every guarded test that did not match bitwise in DIR (golden layout), "
+                         "for 'trainguard bless --from DIR'")
+    group.addoption("--trainguard-report", metavar="DIR", default=None,
+                    help="write summary.md, summary.json and plots of changed trajectories to DIR")
     parser.addini("trainguard_golden_dir", "folder of golden files, relative to rootdir", default="golden")
     parser.addini("trainguard_rtol", "default relative tolerance of guarded tests", default="")
     parser.addini("trainguard_atol", "default absolute tolerance of guarded tests", default="")
@@ -62,6 +67,7 @@ class GuardSession:
     def __init__(self, config: pytest.Config) -> None:
         self.config = config
         self.results: list[Any] = []
+        self.report_path: Path | None = None
 
     @property
     def rootpath(self) -> Path:
@@ -69,9 +75,16 @@ class GuardSession:
 
     def golden_dir(self) -> Path:
         option = self.config.getoption("--trainguard-golden-dir")
-        raw = option if option else (self.config.getini("trainguard_golden_dir") or "golden")
+        if option:
+            return self.resolve(option)
+        return self.resolve(self.config.getini("trainguard_golden_dir") or "golden", base=self.rootpath)
+
+    def resolve(self, raw: str, base: Path | None = None) -> Path:
+        """Command-line paths are relative to the invocation folder, ini paths to rootdir."""
         path = Path(raw)
-        return path if path.is_absolute() else self.rootpath / path
+        if path.is_absolute():
+            return path
+        return (base if base is not None else Path(self.config.invocation_params.dir)) / path
 
     def bless_command(self, nodeid: str) -> str:
         parts = ["pytest", "--trainguard-bless", "--trainguard-reason", "'describe the intended change'"]
@@ -108,13 +121,14 @@ def trajectory(request: pytest.FixtureRequest) -> Iterator[Any]:
         max_values = parse_ini_int("trainguard_max_values", config.getini("trainguard_max_values"), DEFAULT_MAX_VALUES)
     except UsageError as exc:
         _fail(f"{request.node.nodeid}: {exc}")
+    traj = Trajectory(max_values=max_values)
     saved = GlobalState.capture()
     try:
         guarded_setup(settings.seed, settings.deterministic)
-        traj = Trajectory(max_values=max_values)
         request.node.stash[_ITEM_KEY] = _Pending(traj, settings, fingerprint())
         yield traj
     finally:
+        traj.close()
         saved.restore()
 
 
@@ -148,6 +162,7 @@ def _finish(item: pytest.Item, pending: _Pending) -> None:
     session: GuardSession = item.config.stash[_SESSION_KEY]
     traj = pending.trajectory
     settings = pending.settings
+    traj.close()
     run = traj.to_run()
     if run.is_empty:
         _fail(f"{item.nodeid}: the guarded test recorded nothing; call trajectory.log(step, loss=...) "
@@ -173,10 +188,26 @@ def _finish(item: pytest.Item, pending: _Pending) -> None:
     else:
         result = guard.check(item.nodeid, run, folder, settings.policy, session.bless_command(item.nodeid),
                              base=session.rootpath)
+    results_dir = item.config.getoption("--trainguard-results")
+    if results_dir and not bless and result.outcome != guard.IDENTICAL:
+        from .results import write_result
+
+        write_result(session.resolve(results_dir), item.nodeid, run)
     session.results.append(result)
     item.user_properties.append(("trainguard", result.outcome))
     if result.failed:
         _fail(result.message)
+
+
+def pytest_sessionfinish(session: pytest.Session, exitstatus: int) -> None:
+    config = session.config
+    guard_session = config.stash.get(_SESSION_KEY, None)
+    report_dir = config.getoption("--trainguard-report", None)
+    if guard_session is None or not report_dir:
+        return
+    from .report_files import write_report
+
+    guard_session.report_path = write_report(guard_session.resolve(report_dir), guard_session.results)
 
 
 def pytest_terminal_summary(terminalreporter: Any, exitstatus: int, config: pytest.Config) -> None:
@@ -188,3 +219,5 @@ def pytest_terminal_summary(terminalreporter: Any, exitstatus: int, config: pyte
     terminalreporter.write_sep("=", "trainguard")
     for line in summary_lines(from_stash.results):
         terminalreporter.write_line(line)
+    if from_stash.report_path is not None:
+        terminalreporter.write_line(f"report: {from_stash.report_path}")
