@@ -109,14 +109,17 @@ def _anomaly_check_nan(torch: Any) -> bool:
     return bool(getter()) if getter else True
 
 
-def guarded_setup(seed: int, deterministic: bool | str = True) -> None:
+def guarded_setup(seed: int, deterministic: bool | str = True, threads: int | None = None) -> None:
     """Seed every RNG from `seed` and pin the settings that make kernels reproducible.
 
     `deterministic` is True (ops without a deterministic implementation raise), "warn"
-    (they warn), or False (leave torch's deterministic mode off).
+    (they warn), or False (leave torch's deterministic mode off). `threads` sets torch's
+    intra-op thread count (reductions may group differently with another count).
     """
     import torch
 
+    if threads is not None:
+        torch.set_num_threads(threads)
     for key, value in DETERMINISTIC_ENV.items():
         os.environ.setdefault(key, value)
     random.seed(seed)

@@ -55,8 +55,13 @@ def display_path(folder: Path, base: Path | None) -> str:
 
 
 def check(nodeid: str, run: Run, folder: Path, policy: Policy, bless_command: str,
-          base: Path | None = None, max_bytes: int = golden.DEFAULT_MAX_FILE_BYTES) -> GuardResult:
-    """Compare `run` against the golden in `folder`. Never writes anything."""
+          base: Path | None = None, max_bytes: int = golden.DEFAULT_MAX_FILE_BYTES,
+          use_calibrated: bool = True) -> GuardResult:
+    """Compare `run` against the golden in `folder`. Never writes anything.
+
+    With `use_calibrated`, tolerances stored in the golden by `trainguard calibrate --write`
+    replace `policy`'s defaults (the caller passes False when the marker set them itself).
+    """
     shown = display_path(folder, base)
     try:
         reference = golden.read_run(folder, max_bytes=max_bytes)
@@ -72,6 +77,10 @@ def check(nodeid: str, run: Run, folder: Path, policy: Policy, bless_command: st
             message=(f"trainguard: the golden of {nodeid} cannot be used:\n  {exc}\n"
                      f"It was left untouched. If you want to replace it with this run, re-bless:\n  {bless_command}"),
         )
+    if use_calibrated:
+        from .settings import calibrated_policy
+
+        policy = calibrated_policy(policy, reference.meta)
     cmp = compare(reference, run, policy)
     result = GuardResult(nodeid, shown, cmp.outcome, comparison=cmp, run=run, reference=reference)
     if cmp.failed:

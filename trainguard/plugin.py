@@ -35,6 +35,10 @@ def pytest_addoption(parser: pytest.Parser) -> None:
                          "for 'trainguard bless --from DIR'")
     group.addoption("--trainguard-report", metavar="DIR", default=None,
                     help="write summary.md, summary.json and plots of changed trajectories to DIR")
+    group.addoption("--trainguard-threads", metavar="N", type=int, default=None,
+                    help="set torch's intra-op thread count inside guarded tests")
+    group.addoption("--trainguard-nondeterministic", action="store_true", default=False,
+                    help="turn torch's deterministic mode off in every guarded test (to measure noise)")
     parser.addini("trainguard_golden_dir", "folder of golden files, relative to rootdir", default="golden")
     parser.addini("trainguard_rtol", "default relative tolerance of guarded tests", default="")
     parser.addini("trainguard_atol", "default absolute tolerance of guarded tests", default="")
@@ -124,7 +128,8 @@ def trajectory(request: pytest.FixtureRequest) -> Iterator[Any]:
     traj = Trajectory(max_values=max_values)
     saved = GlobalState.capture()
     try:
-        guarded_setup(settings.seed, settings.deterministic)
+        deterministic = False if config.getoption("--trainguard-nondeterministic") else settings.deterministic
+        guarded_setup(settings.seed, deterministic, threads=config.getoption("--trainguard-threads"))
         request.node.stash[_ITEM_KEY] = _Pending(traj, settings, fingerprint())
         yield traj
     finally:
@@ -187,7 +192,7 @@ def _finish(item: pytest.Item, pending: _Pending) -> None:
         result = guard.bless(item.nodeid, run, folder, settings.policy, base=session.rootpath)
     else:
         result = guard.check(item.nodeid, run, folder, settings.policy, session.bless_command(item.nodeid),
-                             base=session.rootpath)
+                             base=session.rootpath, use_calibrated=not settings.marker_tolerance)
     results_dir = item.config.getoption("--trainguard-results")
     if results_dir and not bless and result.outcome != guard.IDENTICAL:
         from .results import write_result

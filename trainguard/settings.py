@@ -23,6 +23,9 @@ class GuardSettings:
     seed: int
     policy: Policy
     deterministic: bool | str
+    #: True when the marker itself set rtol, atol or exact: then tolerances calibrated into
+    #: the golden (`trainguard calibrate --write`) do not override it.
+    marker_tolerance: bool = False
 
 
 def from_marker(args: tuple[Any, ...], kwargs: Mapping[str, Any], ini_rtol: float | None = None,
@@ -67,7 +70,27 @@ def from_marker(args: tuple[Any, ...], kwargs: Mapping[str, Any], ini_rtol: floa
                 check_tolerance_value("rtol", spec["rtol"], f"{where} metrics[{name!r}]") if "rtol" in spec else rtol,
                 check_tolerance_value("atol", spec["atol"], f"{where} metrics[{name!r}]") if "atol" in spec else atol,
             )
-    return GuardSettings(seed, Policy(default=default, exact=exact, metrics=per_metric), deterministic)
+    explicit = any(k in kwargs for k in ("rtol", "atol", "exact"))
+    return GuardSettings(seed, Policy(default=default, exact=exact, metrics=per_metric), deterministic, explicit)
+
+
+def calibrated_policy(policy: Policy, golden_meta: Mapping[str, Any]) -> Policy:
+    """The tolerances `trainguard calibrate --write` stored in a golden, layered under the marker's.
+
+    Precedence: marker > calibrated (golden metadata) > ini > defaults. Per-metric entries
+    from the marker still win over calibrated ones.
+    """
+    cal = golden_meta.get("calibrated")
+    if not isinstance(cal, Mapping):
+        return policy
+    try:
+        default = Tolerance(float(cal["rtol"]), float(cal["atol"]))
+        metrics = {str(k): Tolerance(float(v["rtol"]), float(v["atol"]))
+                   for k, v in (cal.get("metrics") or {}).items()}
+    except (KeyError, TypeError, ValueError):
+        return policy
+    metrics.update(policy.metrics or {})
+    return Policy(default=default, exact=policy.exact, metrics=metrics)
 
 
 def parse_ini_float(name: str, raw: Any) -> float | None:
