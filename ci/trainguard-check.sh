@@ -1,0 +1,37 @@
+#!/usr/bin/env bash
+# Pull-request check for guarded training tests. Provider-neutral: copy it into your repo
+# and call it from any CI service.
+#
+#   ci/trainguard-check.sh [PYTEST ARGS...]
+#
+# Runs pytest with trainguard's results and report folders, so that a failing run leaves:
+#   $TRAINGUARD_RESULTS_DIR  new runs of every guarded test that did not match bitwise,
+#                            in the golden layout (adopt them: trainguard bless --from DIR)
+#   $TRAINGUARD_REPORT_DIR   summary.md (a Markdown table for the PR or the job summary),
+#                            summary.json, and plots of changed trajectories
+# Upload both folders as artifacts. Exits with pytest's status: non-zero on any change.
+set -uo pipefail
+
+RESULTS_DIR="${TRAINGUARD_RESULTS_DIR:-trainguard-results}"
+REPORT_DIR="${TRAINGUARD_REPORT_DIR:-trainguard-report}"
+PYTHON="${PYTHON:-python}"
+
+rm -rf "$RESULTS_DIR" "$REPORT_DIR"
+mkdir -p "$RESULTS_DIR" "$REPORT_DIR"
+
+"$PYTHON" -m pytest --trainguard-results "$RESULTS_DIR" --trainguard-report "$REPORT_DIR" "$@"
+status=$?
+
+if [ -f "$REPORT_DIR/summary.md" ]; then
+    cat "$REPORT_DIR/summary.md"
+    # Job summaries: GitHub Actions reads GITHUB_STEP_SUMMARY; other services ignore it.
+    if [ -n "${GITHUB_STEP_SUMMARY:-}" ]; then
+        cat "$REPORT_DIR/summary.md" >> "$GITHUB_STEP_SUMMARY"
+    fi
+fi
+if [ "$status" -ne 0 ] && [ -n "$(ls -A "$RESULTS_DIR" 2>/dev/null)" ]; then
+    echo
+    echo "trainguard: behaviour changed. If the change is intended, download the results artifact and run:"
+    echo "  ci/trainguard-rebless.sh --from <artifact folder> --reason 'why the change is intended'"
+fi
+exit "$status"
