@@ -15,7 +15,8 @@ from typing import Iterable
 import numpy as np
 
 from .compare import CHANGED, CLOSE, IDENTICAL
-from .tolerance import Tolerance, bitwise_equal, within
+from .checksum import sketch_distance
+from .tolerance import Tolerance, bitwise_equal, norm_allowed, within
 from .record import STAGE_ORDER, STAGES, TraceEntry
 
 #: Tensors named in a divergence line before the rest is counted.
@@ -85,7 +86,15 @@ def _entry_verdict(g: TraceEntry | None, n: TraceEntry | None, tol: Tolerance, e
     if exact:
         return CHANGED
     a, b = _stats(g), _stats(n)
-    return CLOSE if bool(np.all(bitwise_equal(a, b) | within(a, b, tol))) else CHANGED
+    if not bool(np.all(bitwise_equal(a, b) | within(a, b, tol))):
+        return CHANGED
+    # Statistics cannot see a reordering (a shuffled batch has the same min, max, mean and
+    # norm); the position-hashed sketch can.
+    if g.sketch is not None and n.sketch is not None and g.sketch.shape == n.sketch.shape:
+        numel = int(np.prod(g.shape)) if g.shape else 1
+        if not sketch_distance(g.sketch, n.sketch) <= norm_allowed(numel, g.l2, tol):
+            return CHANGED
+    return CLOSE
 
 
 def compare_traces(golden: list[TraceEntry], new: list[TraceEntry], tol: Tolerance, exact: bool = False) -> TraceDiff:

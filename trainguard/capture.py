@@ -187,8 +187,9 @@ class Trajectory:
             dtype = str(array.dtype)
             shape = tuple(int(d) for d in array.shape)
             numel = int(array.size)
-        st = checksum.stats(array)
-        values = checksum.values_float64(array) if numel <= self.max_values else None
+        keep_values = numel <= self.max_values
+        st, sketch = checksum.summarize(array, 0 if keep_values else checksum.STATE_SKETCH)
+        values = checksum.values_float64(array) if keep_values else None
         return TensorRecord(
             name=name,
             kind=kind,
@@ -201,6 +202,7 @@ class Trajectory:
             l2=st.l2,
             nonfinite=st.nonfinite,
             values=values,
+            sketch=sketch,
         )
 
     # -- per-step trace ------------------------------------------------------------

@@ -14,7 +14,8 @@ from typing import Any
 import numpy as np
 
 from .record import MetricSeries, Run, TensorRecord
-from .tolerance import Policy, Tolerance, bitwise_equal, within
+from .checksum import sketch_distance
+from .tolerance import Policy, Tolerance, bitwise_equal, norm_allowed, within
 
 IDENTICAL = "identical"
 CLOSE = "within tolerance"
@@ -55,6 +56,8 @@ class TensorDiff:
     numel: int = 0
     golden_value: float | None = None  # set for one-element entries (hyperparameters, step counts)
     new_value: float | None = None
+    sketch_distance: float | None = None  # estimated L2 distance, when only sketches were stored
+    sketch_allowed: float | None = None
 
 
 @dataclass
@@ -154,6 +157,14 @@ def compare_tensor(name: str, golden: TensorRecord | None, new: TensorRecord | N
     diff.elements_off = int((~ok).sum())
     if diff.basis == "values" and g.size == 1:
         diff.golden_value, diff.new_value = float(g[0]), float(n[0])
+    if diff.basis == "statistics" and golden.sketch is not None and new.sketch is not None \
+            and golden.sketch.shape == new.sketch.shape:
+        diff.basis = "statistics+sketch"
+        diff.sketch_distance = sketch_distance(golden.sketch, new.sketch)
+        diff.sketch_allowed = norm_allowed(golden.numel, golden.l2, tol)
+        if not diff.sketch_distance <= diff.sketch_allowed:
+            diff.elements_off += 1
+            diff.reasons.append(f"estimated L2 distance {diff.sketch_distance:.3g} > allowed {diff.sketch_allowed:.3g}")
     if policy.exact or diff.elements_off:
         diff.verdict = CHANGED
     else:

@@ -40,6 +40,8 @@ TEMP_PREFIX = ".tmp-"
 DEFAULT_MAX_FILE_BYTES = 512 * 1024 * 1024
 
 _STATE_FLOAT_COLUMNS = ("min", "max", "mean", "l2")
+#: Columns a reader tolerates missing (added late in format 1; read as null).
+_OPTIONAL_COLUMNS = ("sketch",)
 
 
 def _schemas() -> tuple[Any, Any]:
@@ -60,6 +62,7 @@ def _schemas() -> tuple[Any, Any]:
             ("l2", pa.float64()),
             ("nonfinite", pa.int64()),
             ("values", pa.list_(pa.float64())),
+            ("sketch", pa.list_(pa.float64())),
         ]
     )
     return metrics, state
@@ -83,6 +86,7 @@ def _trace_schema() -> Any:
             ("mean", pa.float64()),
             ("l2", pa.float64()),
             ("nonfinite", pa.int64()),
+            ("sketch", pa.list_(pa.float64())),
         ]
     )
 
@@ -135,6 +139,7 @@ def _state_table(run: Run) -> Any:
         "l2": [r.l2 for r in recs],
         "nonfinite": [r.nonfinite for r in recs],
         "values": [None if r.values is None else r.values for r in recs],
+        "sketch": [None if r.sketch is None else r.sketch for r in recs],
     }
     arrays = [pa.array(columns[f.name], type=f.type) for f in schema]
     return pa.Table.from_arrays(arrays, schema=schema.with_metadata(_metadata(run.meta)))
@@ -147,6 +152,7 @@ def _trace_table(run: Run) -> Any:
     entries = run.trace or []
     columns = {f.name: [getattr(e, f.name) for e in entries] for f in schema}
     columns["shape"] = [list(s) for s in columns["shape"]]
+    columns["sketch"] = [None if s is None else np.asarray(s, dtype=np.float64) for s in columns["sketch"]]
     arrays = [pa.array(columns[f.name], type=f.type) for f in schema]
     return pa.Table.from_arrays(arrays, schema=schema.with_metadata(_metadata(run.meta)))
 
@@ -227,14 +233,18 @@ def _read_table(path: Path, expected: Any, max_bytes: int) -> tuple[Any, dict[st
     except (pa.ArrowException, OSError, ValueError) as exc:
         raise GoldenCorruptError(path, f"is not a readable Parquet file ({_short(exc)})") from None
     meta = _check_metadata(path, schema.metadata or {})
+    present = []
     for field in expected:
         if field.name not in schema.names:
+            if field.name in _OPTIONAL_COLUMNS:
+                continue
             raise GoldenCorruptError(path, f"has no column {field.name!r}")
+        present.append(field.name)
         actual = schema.field(field.name).type
         if not actual.equals(field.type):
             raise GoldenCorruptError(path, f"column {field.name!r} has type {actual}, expected {field.type}")
     try:
-        table = pf.read(columns=[f.name for f in expected])
+        table = pf.read(columns=present)
     except (pa.ArrowException, OSError, ValueError) as exc:
         raise GoldenCorruptError(path, f"cannot be read ({_short(exc)})") from None
     return table, meta
@@ -312,7 +322,7 @@ def read_trace(path: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_B
         entries.append(TraceEntry(int(row["step"]), row["stage"], int(row["seq"]), int(row["call"]), row["name"],
                                   row["dtype"],
                                   tuple(int(d) for d in row["shape"] if d is not None), row["sha256"],
-                                  *floats, int(row["nonfinite"])))
+                                  *floats, int(row["nonfinite"]), _sketch_cell(path, row["name"], row.get("sketch"))))
     return entries
 
 
@@ -370,6 +380,7 @@ def _tensors_from_table(path: Path, table: Any) -> dict[str, TensorRecord]:
                 raise GoldenCorruptError(path, f"tensor {name!r}: {len(values)} stored values for {numel} elements")
             values = np.array([math.nan if v is None else v for v in values], dtype=np.float64)
         floats = [math.nan if row[c] is None else float(row[c]) for c in _STATE_FLOAT_COLUMNS]
+        sketch = _sketch_cell(path, name, row.get("sketch"))
         out[name] = TensorRecord(
             name=name,
             kind=row["kind"],
@@ -382,5 +393,14 @@ def _tensors_from_table(path: Path, table: Any) -> dict[str, TensorRecord]:
             l2=floats[3],
             nonfinite=int(row["nonfinite"]),
             values=values,
+            sketch=sketch,
         )
     return out
+
+
+def _sketch_cell(path: Path, name: str, cell: Any) -> np.ndarray | None:
+    if cell is None:
+        return None
+    if len(cell) > 4096:
+        raise GoldenCorruptError(path, f"{name!r}: a sketch of {len(cell)} values is larger than trainguard writes")
+    return np.array([math.nan if v is None else v for v in cell], dtype=np.float64)

@@ -40,6 +40,7 @@ class TensorRecord:
     l2: float
     nonfinite: int
     values: np.ndarray | None = None  # flat float64, None when over the stored-values limit
+    sketch: np.ndarray | None = None  # count-sketch (checksum.STATE_SKETCH floats) when values are not stored
 
     @property
     def numel(self) -> int:
@@ -71,6 +72,7 @@ class TraceEntry:
     mean: float
     l2: float
     nonfinite: int
+    sketch: np.ndarray | None = None  # small count-sketch: sees reorderings that statistics miss
 
 
 @dataclass

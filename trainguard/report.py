@@ -146,6 +146,8 @@ def describe_comparison(cmp: Comparison) -> str:
         if t.golden_value is not None:
             reasons.append(f"value {fmt(t.golden_value)} -> {fmt(t.new_value)}")
         sizes = [short(t.max_abs), short(t.max_rel)] if t.basis else ["-", "-"]
+        if t.sketch_distance is not None:
+            reasons.append(f"est. L2 distance {short(t.sketch_distance)} (allowed {short(t.sketch_allowed)})")
         tensor_rows.append([t.name, t.kind, t.verdict, ", ".join(reasons), *sizes, off, t.basis or "-"])
     if tensor_rows:
         out.append("")

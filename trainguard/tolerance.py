@@ -82,3 +82,12 @@ def within(golden: np.ndarray, new: np.ndarray, tol: Tolerance) -> np.ndarray:
     both_nan = np.isnan(golden) & np.isnan(new)
     same_inf = ~finite_g & ~finite_n & (golden == new)
     return np.where(finite_g & finite_n, ok, both_nan | same_inf)
+
+
+def norm_allowed(numel: int, golden_l2: float, tol: Tolerance) -> float:
+    """Largest allowed L2 distance for a whole tensor: the norm-wise analogue of the elementwise rule.
+
+    If every element satisfies |d_i| <= atol + rtol |g_i|, then by the triangle inequality
+    ||d||_2 <= atol * sqrt(n) + rtol * ||g||_2. Used where only sketches are stored.
+    """
+    return tol.atol * math.sqrt(max(numel, 0)) + tol.rtol * (golden_l2 if math.isfinite(golden_l2) else 0.0)
