@@ -20,6 +20,8 @@ FIXTURE = "trajectory"
 
 _SESSION_KEY = pytest.StashKey["GuardSession"]()
 _ITEM_KEY = pytest.StashKey["_Pending"]()
+#: The session of the current pytest run; pytest_runtest_logreport receives no config.
+_current_session: "GuardSession | None" = None
 
 
 def pytest_addoption(parser: pytest.Parser) -> None:
@@ -39,6 +41,8 @@ def pytest_addoption(parser: pytest.Parser) -> None:
                     help="set torch's intra-op thread count inside guarded tests")
     group.addoption("--trainguard-nondeterministic", action="store_true", default=False,
                     help="turn torch's deterministic mode off in every guarded test (to measure noise)")
+    group.addoption("--trainguard-shard", metavar="K/N", default=None,
+                    help="run only shard K of N of the guarded tests (stable: chosen by a hash of each node id)")
     parser.addini("trainguard_golden_dir", "folder of golden files, relative to rootdir", default="golden")
     parser.addini("trainguard_rtol", "default relative tolerance of guarded tests", default="")
     parser.addini("trainguard_atol", "default absolute tolerance of guarded tests", default="")
@@ -52,8 +56,16 @@ def pytest_configure(config: pytest.Config) -> None:
         "trainguard(seed=0, rtol=None, atol=None, exact=False, metrics=None, deterministic=True): "
         "guard a seeded training run with golden files (use the 'trajectory' fixture)",
     )
+    global _current_session
     session = GuardSession(config)
     config.stash[_SESSION_KEY] = session
+    _current_session = session
+
+
+def pytest_unconfigure(config: pytest.Config) -> None:
+    global _current_session
+    if _current_session is not None and _current_session.config is config:
+        _current_session = None
 
 
 class _Pending:
@@ -70,7 +82,7 @@ class GuardSession:
 
     def __init__(self, config: pytest.Config) -> None:
         self.config = config
-        self.results: list[Any] = []
+        self.rows: list[dict[str, Any]] = []  # one per guarded test, gathered from reports (xdist-safe)
         self.report_path: Path | None = None
 
     @property
@@ -99,6 +111,41 @@ class GuardSession:
         return " ".join(parts)
 
 
+def parse_shard(raw: str) -> tuple[int, int]:
+    try:
+        k_text, n_text = raw.split("/")
+        k, n = int(k_text), int(n_text)
+    except ValueError:
+        raise pytest.UsageError(f"--trainguard-shard {raw!r}: expected K/N such as 1/4") from None
+    if not 1 <= k <= n:
+        raise pytest.UsageError(f"--trainguard-shard {raw!r}: K must be between 1 and N")
+    return k, n
+
+
+def shard_of(nodeid: str, n: int) -> int:
+    """1-based shard of a node id: SHA-256 based, so it never depends on which other tests exist."""
+    import hashlib
+
+    return int.from_bytes(hashlib.sha256(nodeid.encode("utf-8")).digest()[:8], "big") % n + 1
+
+
+def is_guarded(item: pytest.Item) -> bool:
+    return item.get_closest_marker(MARKER) is not None or FIXTURE in getattr(item, "fixturenames", ())
+
+
+def pytest_collection_modifyitems(session: pytest.Session, config: pytest.Config, items: list[pytest.Item]) -> None:
+    raw = config.getoption("--trainguard-shard")
+    if not raw:
+        return
+    k, n = parse_shard(raw)
+    keep, drop = [], []
+    for item in items:
+        (drop if is_guarded(item) and shard_of(item.nodeid, n) != k else keep).append(item)
+    if drop:
+        config.hook.pytest_deselected(items=drop)
+        items[:] = keep
+
+
 def _fail(message: str) -> None:
     __tracebackhide__ = True
     pytest.fail(message, pytrace=False)
@@ -110,7 +157,7 @@ def trajectory(request: pytest.FixtureRequest) -> Iterator[Any]:
     from .capture import DEFAULT_MAX_VALUES, Trajectory
     from .determinism import GlobalState, guarded_setup
     from .errors import UsageError
-    from .fingerprint import fingerprint
+    from .environment import fingerprint
     from .settings import from_marker, parse_ini_float, parse_ini_int
 
     config = request.config
@@ -198,31 +245,42 @@ def _finish(item: pytest.Item, pending: _Pending) -> None:
         from .results import write_result
 
         write_result(session.resolve(results_dir), item.nodeid, run)
-    session.results.append(result)
-    item.user_properties.append(("trainguard", result.outcome))
+    from .report_files import row_for
+
+    report_dir = item.config.getoption("--trainguard-report")
+    item.user_properties.append(("trainguard", row_for(result, session.resolve(report_dir) if report_dir else None)))
     if result.failed:
         _fail(result.message)
+
+
+def pytest_runtest_logreport(report: pytest.TestReport) -> None:
+    """Gather verdicts from call-phase reports: the same path with and without pytest-xdist."""
+    if report.when != "call":
+        return
+    rows = [value for key, value in report.user_properties if key == "trainguard" and isinstance(value, dict)]
+    if rows and _current_session is not None:
+        _current_session.rows.extend(rows)
 
 
 def pytest_sessionfinish(session: pytest.Session, exitstatus: int) -> None:
     config = session.config
     guard_session = config.stash.get(_SESSION_KEY, None)
     report_dir = config.getoption("--trainguard-report", None)
-    if guard_session is None or not report_dir:
-        return
+    if guard_session is None or not report_dir or hasattr(config, "workerinput"):
+        return  # xdist workers leave the report to the controller
     from .report_files import write_report
 
-    guard_session.report_path = write_report(guard_session.resolve(report_dir), guard_session.results)
+    guard_session.report_path = write_report(guard_session.resolve(report_dir), guard_session.rows)
 
 
 def pytest_terminal_summary(terminalreporter: Any, exitstatus: int, config: pytest.Config) -> None:
-    from_stash = config.stash.get(_SESSION_KEY, None)
-    if from_stash is None or not from_stash.results:
+    guard_session = config.stash.get(_SESSION_KEY, None)
+    if guard_session is None or not guard_session.rows:
         return
     from .summary import summary_lines
 
     terminalreporter.write_sep("=", "trainguard")
-    for line in summary_lines(from_stash.results):
+    for line in summary_lines(guard_session.rows):
         terminalreporter.write_line(line)
-    if from_stash.report_path is not None:
-        terminalreporter.write_line(f"report: {from_stash.report_path}")
+    if guard_session.report_path is not None:
+        terminalreporter.write_line(f"report: {guard_session.report_path}")

@@ -13,9 +13,9 @@ import os
 from urllib.parse import quote
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any
 
-from .compare import CHANGED, CLOSE, IDENTICAL, Comparison
+from .comparison import CHANGED, CLOSE, IDENTICAL, Comparison
 from .paths import safe_component
 from .report import environment_changes, short
 
@@ -57,13 +57,33 @@ def first_divergence(cmp: Comparison | None) -> str:
     return ""
 
 
-def rows_from_results(results: Iterable[Any]) -> list[Row]:
-    rows = []
-    for r in results:
-        cmp = r.comparison
-        env = environment_changes(cmp.golden_meta.get("fingerprint"), cmp.new_meta.get("fingerprint")) if cmp else []
-        rows.append(Row(r.nodeid, r.outcome, first_divergence(cmp), env, blessing=r.blessing))
-    return rows
+def row_for(result: Any, report_dir: Path | None = None) -> dict[str, Any]:
+    """A JSON-ready summary row of one verdict; writes its plot into `report_dir` when it changed.
+
+    Rows are plain data so that they travel from pytest-xdist workers to the controller
+    (in a report's user_properties) and between CI shards (in summary.json).
+    """
+    cmp = result.comparison
+    env = environment_changes(cmp.golden_meta.get("fingerprint"), cmp.new_meta.get("fingerprint")) if cmp else []
+    row = Row(result.nodeid, result.outcome, first_divergence(cmp), env, blessing=result.blessing)
+    data = asdict(row)
+    data["folder"] = result.folder
+    data["plots_unavailable"] = False
+    if (report_dir is not None and not result.blessing and result.outcome == CHANGED
+            and result.reference is not None and result.run is not None):
+        try:
+            import matplotlib  # noqa: F401
+        except ImportError:
+            data["plots_unavailable"] = True
+        else:
+            name = f"{PLOTS}/{safe_component(result.nodeid.replace('::', '__'))}.png"
+            if plot_trajectories(report_dir / name, result.nodeid, result.reference, result.run):
+                data["plot"] = name
+    return data
+
+
+def _row(data: dict[str, Any]) -> Row:
+    return Row(**{k: data[k] for k in Row.__dataclass_fields__ if k in data})
 
 
 def _md_escape(text: str) -> str:
@@ -104,30 +124,67 @@ def _atomic_text(path: Path, text: str) -> None:
     os.replace(tmp, path)
 
 
-def write_report(report_dir: str | os.PathLike[str], results: list[Any]) -> Path:
-    """Write summary.md, summary.json and (with matplotlib) a plot per changed test."""
+PLOTS_NOTE = ("Plots of changed trajectories need matplotlib: `pip install 'trainguard[report]'`, "
+              "then re-run with `--trainguard-report`.")
+
+
+def write_report(report_dir: str | os.PathLike[str], rows: list[dict[str, Any]]) -> Path:
+    """Write summary.md and summary.json for `rows` (plots were written when the rows were made)."""
     report_dir = Path(report_dir)
     report_dir.mkdir(parents=True, exist_ok=True)
-    rows = rows_from_results(results)
-    changed = [(row, r) for row, r in zip(rows, results)
-               if not r.blessing and r.outcome == CHANGED and r.reference is not None and r.run is not None]
-    note = ""
-    if changed:
-        try:
-            import matplotlib  # noqa: F401
-        except ImportError:
-            note = ("Plots of changed trajectories need matplotlib: `pip install 'trainguard[report]'`, "
-                    "then re-run with `--trainguard-report`.")
-        else:
-            (report_dir / PLOTS).mkdir(exist_ok=True)
-            for row, r in changed:
-                name = f"{PLOTS}/{safe_component(r.nodeid.replace('::', '__'))}.png"
-                if plot_trajectories(report_dir / name, r.nodeid, r.reference, r.run):
-                    row.plot = name
-    _atomic_text(report_dir / SUMMARY_MD, summary_markdown(rows, note))
-    payload = {"format": REPORT_FORMAT, "rows": [asdict(row) for row in rows]}
+    note = PLOTS_NOTE if any(r.get("plots_unavailable") for r in rows) else ""
+    _atomic_text(report_dir / SUMMARY_MD, summary_markdown([_row(r) for r in rows], note))
+    payload = {"format": REPORT_FORMAT, "rows": rows}
     _atomic_text(report_dir / SUMMARY_JSON, json.dumps(payload, indent=1, sort_keys=True))
     return report_dir / SUMMARY_MD
+
+
+def read_rows(report_dir: str | os.PathLike[str]) -> list[dict[str, Any]]:
+    """Rows of a report folder's summary.json (for merging shards)."""
+    from .errors import TrainguardError
+
+    path = Path(report_dir) / SUMMARY_JSON
+    try:
+        payload = json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise TrainguardError(f"{path}: missing; is {report_dir} a folder written by --trainguard-report?") from None
+    except (OSError, ValueError, RecursionError) as exc:
+        raise TrainguardError(f"{path}: not readable JSON ({exc})") from None
+    if not isinstance(payload, dict) or payload.get("format") != REPORT_FORMAT or not isinstance(payload.get("rows"), list):
+        raise TrainguardError(f"{path}: not a trainguard summary (format {REPORT_FORMAT} expected)")
+    rows = payload["rows"]
+    for row in rows:
+        if not isinstance(row, dict) or not isinstance(row.get("nodeid"), str) or not isinstance(row.get("outcome"), str):
+            raise TrainguardError(f"{path}: malformed row {row!r:.80}")
+    return rows
+
+
+def merge_reports(sources: list[str | os.PathLike[str]], out: str | os.PathLike[str]) -> tuple[Path, int]:
+    """Merge the report folders of CI shards into one: rows, and their plots copied along."""
+    import shutil
+
+    from .errors import TrainguardError
+
+    out = Path(out)
+    merged: dict[str, dict[str, Any]] = {}
+    for source in sources:
+        for row in read_rows(source):
+            key = f"{row['nodeid']}|{row.get('blessing', False)}"
+            if key in merged:
+                raise TrainguardError(f"{row['nodeid']} appears in more than one report (again in {source}); "
+                                      "were the shards overlapping?")
+            plot = row.get("plot")
+            if plot:
+                src = Path(source) / plot
+                if Path(plot).is_absolute() or ".." in Path(plot).parts or not src.is_file():
+                    row = {**row, "plot": None}
+                else:
+                    (out / PLOTS).mkdir(parents=True, exist_ok=True)
+                    shutil.copyfile(src, out / PLOTS / Path(plot).name)
+                    row = {**row, "plot": f"{PLOTS}/{Path(plot).name}"}
+            merged[key] = row
+    rows = sorted(merged.values(), key=lambda r: r["nodeid"])
+    return write_report(out, rows), len(rows)
 
 
 def plot_trajectories(path: Path, title: str, golden: Any, new: Any) -> bool:

@@ -2,30 +2,27 @@
 
 from __future__ import annotations
 
-from typing import Iterable
+from typing import Any, Iterable
 
-from .compare import CHANGED, CLOSE, IDENTICAL
-from .guard import BLESS_OUTCOMES, NO_GOLDEN, UNREADABLE, GuardResult
-
-_CHECK_ORDER = (IDENTICAL, CLOSE, CHANGED, NO_GOLDEN, UNREADABLE)
+_CHECK_ORDER = ("identical", "within tolerance", "changed", "no golden", "unreadable golden")
+_BLESS_ORDER = ("new", "changed", "unchanged")
 
 
-def summary_lines(results: Iterable[GuardResult]) -> list[str]:
-    results = list(results)
-    checks = [r for r in results if not r.blessing]
-    blesses = [r for r in results if r.blessing]
+def summary_lines(rows: Iterable[dict[str, Any]]) -> list[str]:
+    """Lines for the terminal from summary rows (see report_files.row_for)."""
+    rows = list(rows)
+    checks = [r for r in rows if not r.get("blessing")]
+    blesses = [r for r in rows if r.get("blessing")]
     lines: list[str] = []
     if checks:
-        counts = {k: sum(r.outcome == k for r in checks) for k in _CHECK_ORDER}
-        parts = [f"{n} {k}" for k, n in counts.items() if n]
+        parts = [f"{n} {k}" for k in _CHECK_ORDER if (n := sum(r["outcome"] == k for r in checks))]
         lines.append(f"guarded tests checked: {len(checks)} ({', '.join(parts)})")
         for r in checks:
-            if r.outcome != IDENTICAL:
-                lines.append(f"  {r.outcome:<17} {r.nodeid}")
+            if r["outcome"] != "identical":
+                lines.append(f"  {r['outcome']:<17} {r['nodeid']}")
     if blesses:
-        counts = {k: sum(r.outcome == k for r in blesses) for k in BLESS_OUTCOMES}
-        parts = [f"{n} {k}" for k, n in counts.items() if n]
+        parts = [f"{n} {k}" for k in _BLESS_ORDER if (n := sum(r["outcome"] == k for r in blesses))]
         lines.append(f"goldens blessed: {len(blesses)} ({', '.join(parts)})")
         for r in blesses:
-            lines.append(f"  {r.outcome:<9} {r.nodeid} -> {r.folder}")
+            lines.append(f"  {r['outcome']:<9} {r['nodeid']} -> {r.get('folder', '')}")
     return lines
