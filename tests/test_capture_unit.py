@@ -28,7 +28,7 @@ from trainguard import (
     read_run,
     write_run,
 )
-from trainguard.compare import CHANGED, CLOSE, IDENTICAL
+from trainguard.comparison import CHANGED, CLOSE, IDENTICAL
 
 # -- helpers -------------------------------------------------------------------------
 

@@ -102,3 +102,12 @@ def test_demo_runs_end_to_end(tmp_path):
     assert "demo finished as expected" in out
     assert "param_groups.0.momentum" in out and "0.9 -> 0.91" in out
     assert (tmp_path / "demo" / "golden" / "test_bakery.py" / "test_proofing_lbfgs" / "state.parquet").is_file()
+
+
+def test_public_api_names_survive_submodule_imports():
+    """`trainguard.compare` and `trainguard.fingerprint` are functions, whatever was imported before."""
+    code = ("import trainguard.comparison, trainguard.environment, trainguard.guard, trainguard\n"
+            "from trainguard import compare, fingerprint, check, bless\n"
+            "print(all(callable(f) and not isinstance(f, type(trainguard)) for f in (compare, fingerprint, check, bless)))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "True"

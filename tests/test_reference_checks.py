@@ -324,7 +324,8 @@ def test_within_known_boundary_cases():
 
 # -- Parquet golden files --------------------------------------------------------------
 
-STATE_COLUMNS = ["name", "kind", "dtype", "shape", "numel", "sha256", "min", "max", "mean", "l2", "nonfinite", "values"]
+STATE_COLUMNS = ["name", "kind", "dtype", "shape", "numel", "sha256", "min", "max", "mean", "l2", "nonfinite", "values",
+                 "sketch"]
 
 
 def _parquet_framing(path):

@@ -97,7 +97,7 @@ def test_estimator_error_bound_holds_in_the_stated_fraction_of_trials():
 
 def test_large_state_entry_tolerance_uses_sketch():
     from trainguard.capture import Trajectory
-    from trainguard.compare import CHANGED, CLOSE, compare
+    from trainguard.comparison import CHANGED, CLOSE, compare
     from trainguard.tolerance import Policy
 
     def run(weights):

@@ -23,7 +23,7 @@ import torch
 
 from trainguard.attribution import MAX_NAMES, compare_traces
 from trainguard.capture import Trajectory
-from trainguard.compare import CHANGED, CLOSE, IDENTICAL
+from trainguard.comparison import CHANGED, CLOSE, IDENTICAL
 from trainguard.errors import UsageError
 from trainguard.record import TraceEntry
 from trainguard.tolerance import Tolerance

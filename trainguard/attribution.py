@@ -14,7 +14,7 @@ from typing import Iterable
 
 import numpy as np
 
-from .compare import CHANGED, CLOSE, IDENTICAL
+from .comparison import CHANGED, CLOSE, IDENTICAL
 from .checksum import sketch_distance
 from .tolerance import Tolerance, bitwise_equal, norm_allowed, within
 from .record import STAGE_ORDER, STAGES, TraceEntry

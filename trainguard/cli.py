@@ -30,7 +30,7 @@ def _flatten(data: Any, prefix: str = "") -> list[tuple[str, Any]]:
 
 
 def cmd_env(args: argparse.Namespace) -> int:
-    from .fingerprint import fingerprint
+    from .environment import fingerprint
 
     fp = fingerprint()
     if args.json:
@@ -199,7 +199,7 @@ def cmd_bless(args: argparse.Namespace) -> int:
 
 def cmd_diff(args: argparse.Namespace) -> int:
     from . import golden
-    from .compare import compare
+    from .comparison import compare
     from .report import describe_comparison
     from .tolerance import DEFAULT_ATOL, DEFAULT_RTOL, Policy, Tolerance
 
@@ -218,6 +218,38 @@ def cmd_diff(args: argparse.Namespace) -> int:
     print(f"trainguard diff: {args.a} (reference) vs {args.b}")
     print(describe_comparison(cmp))
     return 1 if cmp.failed else 0
+
+
+# -- bisect ----------------------------------------------------------------------------
+
+
+def cmd_bisect(args: argparse.Namespace) -> int:
+    from .bisect import describe, run_bisect
+
+    outcome = run_bisect(args.good, args.bad, args.nodeids, setup=args.setup, reference=args.reference,
+                         golden_dir=args.golden_dir, keep=args.keep, echo=lambda line: print(line, flush=True))
+    print()
+    print(describe(outcome))
+    return 0 if outcome.found else 1
+
+
+# -- calibrate -------------------------------------------------------------------------
+
+
+def cmd_calibrate(args: argparse.Namespace) -> int:
+    from .calibrate import calibrate
+
+    return calibrate(args.nodeid, runs=args.runs, safety=args.safety, write=args.write,
+                     golden_dir=args.golden_dir, jobs=args.jobs, keep_runs=args.keep_runs,
+                     golden_dir_option=args.golden_dir)
+
+
+def cmd_merge_reports(args: argparse.Namespace) -> int:
+    from .report_files import merge_reports
+
+    path, count = merge_reports(args.dirs, args.out)
+    print(f"merged {count} row(s) from {len(args.dirs)} report folder(s) into {path}")
+    return 0
 
 
 # -- demo ------------------------------------------------------------------------------
@@ -260,6 +292,38 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--atol", type=float, help="absolute tolerance (default: the reference's)")
     p.add_argument("--exact", action="store_true", help="demand bitwise identity")
     p.set_defaults(func=cmd_diff)
+    p = sub.add_parser("bisect", help="find the first commit at which guarded tests stop matching (git bisect)")
+    p.add_argument("--good", required=True, metavar="REV", help="a revision whose tests match the reference")
+    p.add_argument("--bad", required=True, metavar="REV", help="a later revision whose tests have changed")
+    p.add_argument("--setup", metavar="CMD", help="shell command run at each commit before pytest "
+                   "(e.g. 'pip install -e .'); a non-zero exit marks the commit untestable")
+    p.add_argument("--reference", choices=("good", "worktree"), default="good",
+                   help="goldens to compare with: the good revision's (default) or the work tree's")
+    p.add_argument("--golden-dir", metavar="DIR",
+                   help="golden folder (default: the ini option trainguard_golden_dir, else ./golden)")
+    p.add_argument("--keep", action="store_true",
+                   help="keep the temporary folder (frozen reference, each commit's report) and print where it is")
+    p.add_argument("nodeids", nargs="+", metavar="NODEID", help="guarded tests to check at each commit")
+    p.set_defaults(func=cmd_bisect)
+    p = sub.add_parser("calibrate", help="run a guarded test under noise-only variations (threads, deterministic mode, "
+                       "hash seed), report the spread and propose rtol/atol")
+    p.add_argument("nodeid", metavar="NODEID", help="one guarded test, e.g. tests/test_x.py::test_y")
+    p.add_argument("--runs", type=int, default=2, metavar="N",
+                   help="baseline runs (default 2, at least 2); each variation runs N-1 times, at least once")
+    p.add_argument("--safety", type=float, default=10.0, metavar="F",
+                   help="proposed tolerance = F x the largest spread observed (default 10)")
+    p.add_argument("--write", action="store_true",
+                   help="store the proposal in the test's golden (metadata 'calibrated'), where comparisons use it")
+    p.add_argument("--golden-dir", help="golden folder (default: the ini option trainguard_golden_dir, else ./golden)")
+    p.add_argument("--jobs", type=int, default=None, metavar="J",
+                   help="runs at a time after the first (default: a quarter of the CPUs, 1 to 4)")
+    p.add_argument("--keep-runs", metavar="DIR", help="keep every run's recording in DIR (empty or absent), "
+                   "one folder per run, for trainguard show/diff")
+    p.set_defaults(func=cmd_calibrate)
+    p = sub.add_parser("merge-reports", help="merge the --trainguard-report folders of CI shards into one")
+    p.add_argument("dirs", nargs="+", metavar="DIR", help="report folders (each with summary.json)")
+    p.add_argument("--out", required=True, metavar="DIR", help="folder for the merged summary.md, summary.json, plots")
+    p.set_defaults(func=cmd_merge_reports)
     p = sub.add_parser("env", help="print this machine's environment fingerprint")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_env)

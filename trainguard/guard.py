@@ -11,7 +11,7 @@ import os
 from dataclasses import dataclass
 from pathlib import Path
 from . import golden
-from .compare import CHANGED, CLOSE, IDENTICAL, Comparison, compare
+from .comparison import CHANGED, CLOSE, IDENTICAL, Comparison, compare
 from .errors import GoldenMissingError, TrainguardError
 from .record import Run
 from .report import failure_report
@@ -100,6 +100,10 @@ def bless(nodeid: str, run: Run, folder: Path, policy: Policy, base: Path | None
             previous = None
         if previous is not None and _same_golden(previous, run, policy):
             return GuardResult(nodeid, shown, BLESSED_UNCHANGED, blessing=True)
+        if previous is not None and "calibrated" in previous.meta and "calibrated" not in run.meta:
+            # Calibrated tolerances measure the machine's noise floor, not the behaviour being
+            # re-blessed: keep them (re-run `trainguard calibrate --write` to refresh them).
+            run.meta = {**run.meta, "calibrated": previous.meta["calibrated"]}
     golden.write_run(folder, run)
     return GuardResult(nodeid, shown, outcome, blessing=True)
 

@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 from typing import Any, Iterable, Sequence
 
-from .compare import CHANGED, CLOSE, IDENTICAL, Comparison
+from .comparison import CHANGED, CLOSE, IDENTICAL, Comparison
 
 #: Most rows of one kind shown in a report before the rest is summarised.
 MAX_ROWS = 20
