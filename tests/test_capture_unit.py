@@ -565,3 +565,18 @@ def test_decreasing_steps_in_golden(golden_folder):
     table = pa.table({"metric": ["loss", "loss"], "step": pa.array([3, 1], pa.int64()), "value": [1.0, 2.0]})
     _rewrite_metrics(golden_folder, table)
     _assert_corrupt(golden_folder, "metrics.parquet", "steps that do not strictly increase")
+
+
+def test_rebless_keeps_calibrated_tolerances(tmp_path):
+    from trainguard import bless, read_run
+
+    folder = tmp_path / "golden" / "test_kiln"
+    first = _recorded().to_run()
+    first.meta = {"seed": 1, "calibrated": {"rtol": 2e-4, "atol": 1e-8, "metrics": {}}}
+    bless("t::kiln", first, folder, Policy())
+    changed = _recorded(loss=(9.0, 8.0, 7.0)).to_run()
+    changed.meta = {"seed": 1}
+    assert bless("t::kiln", changed, folder, Policy()).outcome == "changed"
+    back = read_run(folder)
+    assert back.metrics["loss"].values.tolist() == [9.0, 8.0, 7.0]
+    assert back.meta["calibrated"]["rtol"] == 2e-4
