@@ -28,6 +28,7 @@ from trainguard import (
     read_run,
     write_run,
 )
+from trainguard import golden as golden_store
 from trainguard.comparison import CHANGED, CLOSE, IDENTICAL
 
 # -- helpers -------------------------------------------------------------------------
@@ -386,7 +387,7 @@ def test_write_read_round_trip_is_equal(tmp_path):
     assert back.tensors["big"].values is None
     assert back.tensors["big"].sketch is not None  # too large for values: a sketch stands in
     assert {k: back.meta[k] for k in run.meta} == run.meta
-    assert back.meta["format_version"] == 1
+    assert back.meta["format_version"] == golden_store.FORMAT_VERSION == 2
     # the round trip compares as identical
     assert compare(run, back, Policy(exact=True)).outcome == IDENTICAL
     # the stored layout is the documented one (read with pyarrow directly)
@@ -510,8 +511,10 @@ def golden_folder(tmp_path) -> Path:
 
 def _rewrite_metrics(folder: Path, table: pa.Table) -> None:
     original = pq.read_table(folder / "metrics.parquet")
-    table = table.replace_schema_metadata(original.schema.metadata)  # keep trainguard's version stamp
-    pq.write_table(table, folder / "metrics.parquet")
+    metadata = dict(original.schema.metadata)  # keep trainguard's version stamp and run id
+    # reseal: recompute the content digest, so the checks behind the digest are reached
+    metadata[golden_store.KEY_DIGEST] = golden_store.content_digest("metrics.parquet", table, metadata).encode()
+    pq.write_table(table.replace_schema_metadata(metadata), folder / "metrics.parquet")
 
 
 def _assert_corrupt(folder: Path, filename: str, phrase: str) -> None:

@@ -118,7 +118,9 @@ def set_fingerprint_torch(folder: Path, version: str) -> None:
         meta = json.loads(metadata[b"trainguard.meta"])
         meta["fingerprint"]["packages"]["torch"] = version
         metadata[b"trainguard.meta"] = json.dumps(meta, sort_keys=True).encode()
-        assert metadata[b"trainguard.format_version"] == b"1"
+        assert metadata[b"trainguard.format_version"] == b"2"
+        # reseal: recompute the content digest, as a deliberate metadata edit must
+        metadata[golden_store.KEY_DIGEST] = golden_store.content_digest(path.name, table, metadata).encode()
         pq.write_table(table.replace_schema_metadata(metadata), path)
 
 
@@ -247,9 +249,9 @@ def test_bless_from_errors_never_touch_goldens(orchard, tmp_path, capsys):
     # One result from another format version spoils the whole adoption, including the good ones.
     bad = root / "mixed-results"
     shutil.copytree(results, bad)
-    set_format_version(golden_folder(bad, SAPLING), "2")
+    set_format_version(golden_folder(bad, SAPLING), "3")
     err = refused("--from", str(bad))
-    assert "format 2" in err and "test_yield_sapling" in err
+    assert "format 3" in err and "test_yield_sapling" in err
 
     # --dry-run lists what would change and writes nothing
     assert main(["bless", "--from", str(results), "--golden-dir", str(goldens), "--dry-run"]) == 0

@@ -1,0 +1,290 @@
+"""Fuzzing the golden reader: only trainguard's own errors may come out of `read_run`.
+
+Golden files arrive through pull requests, so the reader gets hostile bytes. Four
+Hypothesis-driven tests (500 examples each, derandomized so CI sees the same cases every
+run) mutate valid goldens: raw byte flips, truncations and insertions; metadata rewritten
+with random and deeply nested JSON; tables of random column types; and valid tables with
+random cell values (resealed with a correct digest so the checks behind it are reached).
+Each prints how many cases it tried, how many were refused with a trainguard error, and how
+many other exceptions escaped (must be 0).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+from pathlib import Path
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from golden_samples import make_run, same_run
+from trainguard import golden
+from trainguard.errors import TrainguardError
+
+EXAMPLES = 500
+FUZZ = settings(max_examples=EXAMPLES, deadline=None, derandomize=True, database=None,
+                suppress_health_check=list(HealthCheck))
+FILES = ("metrics.parquet", "state.parquet", "trace.parquet")
+A = make_run("A")
+
+
+@pytest.fixture(scope="module")
+def pristine(tmp_path_factory) -> tuple[Path, dict[str, bytes]]:
+    base = tmp_path_factory.mktemp("fuzz") / "golden" / "test_proofing"
+    golden.write_run(base, A)
+    return base, {name: (base / name).read_bytes() for name in FILES}
+
+
+class Tally:
+    def __init__(self, label: str) -> None:
+        self.label, self.cases, self.refused, self.accepted, self.escapes = label, 0, 0, 0, []
+
+    def read(self, folder: Path):
+        """read_run on a damaged folder: a Run, or None after a trainguard error; anything else is recorded."""
+        self.cases += 1
+        before = sorted(os.listdir(folder))
+        try:
+            run = golden.read_run(folder, max_bytes=1 << 20)
+        except TrainguardError as exc:
+            assert str(folder) in str(exc)  # every refusal names the folder or a file in it
+            self.refused += 1
+            run = None
+        except BaseException as exc:  # noqa: BLE001 - exactly what this test hunts for
+            self.escapes.append(f"{type(exc).__name__}: {str(exc)[:200]}")
+            run = None
+        else:
+            self.accepted += 1
+        assert sorted(os.listdir(folder)) == before  # reading never writes
+        return run
+
+    def report(self) -> None:
+        print(f"\nfuzz {self.label}: {self.cases} cases, {self.refused} refused with a trainguard error, "
+              f"{self.accepted} accepted, {len(self.escapes)} other exceptions escaped")
+        assert self.cases >= EXAMPLES
+        assert self.escapes == [], self.escapes[:5]
+
+
+def _fresh(pristine, tmp_path: Path) -> Path:
+    base, _ = pristine
+    folder = tmp_path / "case"
+    if folder.exists():
+        shutil.rmtree(folder)
+    shutil.copytree(base, folder)
+    return folder
+
+
+# -- 1. raw bytes --------------------------------------------------------------------------------
+
+_edit = st.one_of(
+    st.tuples(st.just("flip"), st.integers(0, 1 << 20), st.integers(1, 255)),
+    st.tuples(st.just("truncate"), st.integers(0, 1 << 20), st.just(0)),
+    st.tuples(st.just("insert"), st.integers(0, 1 << 20), st.binary(min_size=1, max_size=16)),
+    st.tuples(st.just("overwrite"), st.integers(0, 1 << 20), st.binary(min_size=1, max_size=16)),
+)
+
+
+def _apply(data: bytes, edits) -> bytes:
+    out = bytearray(data)
+    for op, pos, arg in edits:
+        pos = pos % (len(out) + 1)
+        if op == "flip" and out:
+            out[pos % len(out)] ^= arg
+        elif op == "truncate":
+            del out[pos:]
+        elif op == "insert":
+            out[pos:pos] = arg
+        elif op == "overwrite":
+            out[pos:pos + len(arg)] = arg
+    return bytes(out)
+
+
+def test_fuzz_byte_flips_truncations_and_insertions(pristine, tmp_path):
+    tally = Tally("raw bytes")
+    folder = _fresh(pristine, tmp_path)
+    _, original = pristine
+
+    @FUZZ
+    @given(name=st.sampled_from(FILES), edits=st.lists(_edit, min_size=1, max_size=4))
+    def case(name, edits):
+        for n in FILES:
+            (folder / n).write_bytes(original[n])
+        damaged = _apply(original[name], edits)
+        (folder / name).write_bytes(damaged)
+        run = tally.read(folder)
+        if run is not None:  # accepted only where the bytes changed nothing the digest covers
+            assert same_run(run, A), (name, edits)
+
+    case()
+    tally.report()
+
+
+# -- 2. metadata ---------------------------------------------------------------------------------
+
+_json = st.recursive(
+    st.none() | st.booleans() | st.integers() | st.floats(allow_nan=False) | st.text(max_size=8),
+    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=6), inner, max_size=4),
+    max_leaves=20,
+)
+_known_keys = st.sampled_from(["nodeid", "seed", "deterministic", "tolerances", "max_values", "fingerprint",
+                               "blessed_at", "reason", "calibrated", "format_version"])
+
+
+@st.composite
+def _meta_bytes(draw) -> bytes:
+    kind = draw(st.integers(0, 3))
+    if kind == 0:  # deep nesting, up to far past Python's recursion limit
+        depth = draw(st.integers(1, 5000))
+        opener, closer = draw(st.sampled_from([(b"[", b"]"), (b'{"k":', b"}")]))
+        return opener * depth + b"0" + closer * depth
+    if kind == 1:  # valid object, known keys with values of any type
+        meta = dict(A.meta)
+        meta.update(draw(st.dictionaries(_known_keys, _json, max_size=4)))
+        return json.dumps(meta).encode()
+    if kind == 2:  # any JSON at all
+        return json.dumps(draw(_json)).encode()
+    return draw(st.binary(max_size=64))  # not JSON
+
+
+def test_fuzz_metadata_rewrites_with_random_and_deeply_nested_json(pristine, tmp_path):
+    tally = Tally("metadata")
+    folder = _fresh(pristine, tmp_path)
+    _, original = pristine
+    tables = {n: pq.read_table(folder / n) for n in FILES}
+
+    @FUZZ
+    @given(name=st.sampled_from(FILES), meta=_meta_bytes(), reseal=st.booleans(),
+           version=st.one_of(st.just(b"2"), st.just(b"1"),
+                             st.sampled_from([b"3", b"-1", b"02", b"", b"\xff", b"99999999999999999999"])),
+           run_id=st.one_of(st.just(b"keep"), st.none(), st.binary(max_size=70)))
+    def case(name, meta, reseal, version, run_id):
+        for n in FILES:
+            (folder / n).write_bytes(original[n])
+        table = tables[name]
+        md = dict(table.schema.metadata)
+        md[golden.KEY_META] = meta
+        md[golden.KEY_VERSION] = version
+        if run_id == b"keep":
+            pass
+        elif run_id is None:
+            md.pop(golden.KEY_RUN_ID, None)
+        else:
+            md[golden.KEY_RUN_ID] = run_id
+        if reseal:
+            md[golden.KEY_DIGEST] = golden.content_digest(name, table, md).encode()
+        pq.write_table(table.replace_schema_metadata(md), folder / name)
+        run = tally.read(folder)
+        if run is not None:
+            assert isinstance(run.meta, dict)
+
+    case()
+    tally.report()
+
+
+# -- 3. random column types ------------------------------------------------------------------------
+
+_types = st.sampled_from([pa.int64(), pa.int32(), pa.float64(), pa.float32(), pa.string(), pa.large_string(), pa.binary(),
+                          pa.bool_(), pa.null(), pa.list_(pa.int64()), pa.list_(pa.float64()), pa.list_(pa.string()),
+                          pa.large_list(pa.float64()), pa.timestamp("ms"), pa.dictionary(pa.int32(), pa.string()),
+                          pa.struct([("x", pa.float64())]), pa.list_(pa.list_(pa.float64())), pa.decimal128(10, 2)])
+_names = st.sampled_from(sorted({f.name for n in FILES for f in golden._schema_of(n)}) + ["extra", ""])
+
+
+def _random_array(data, arrow_type, rows: int):
+    empty = pa.array([], type=arrow_type)
+    if rows == 0:
+        return empty
+    nulls = pa.nulls(rows, arrow_type)
+    if data.draw(st.booleans()):
+        return nulls
+    sample = {
+        "int64": lambda: pa.array(data.draw(st.lists(st.integers(-2**63, 2**63 - 1) | st.none(), min_size=rows, max_size=rows)), arrow_type),
+        "double": lambda: pa.array(data.draw(st.lists(st.floats() | st.none(), min_size=rows, max_size=rows)), arrow_type),
+        "string": lambda: pa.array(data.draw(st.lists(st.text(max_size=6) | st.none(), min_size=rows, max_size=rows)), arrow_type),
+        "list<item: int64>": lambda: pa.array(data.draw(st.lists(st.lists(st.integers(-5, 2**40), max_size=4) | st.none(), min_size=rows, max_size=rows)), arrow_type),
+        "list<item: double>": lambda: pa.array(data.draw(st.lists(st.lists(st.floats(), max_size=30) | st.none(), min_size=rows, max_size=rows)), arrow_type),
+    }.get(str(arrow_type))
+    return sample() if sample else nulls
+
+
+def test_fuzz_tables_of_random_column_types(pristine, tmp_path):
+    tally = Tally("column types")
+    folder = _fresh(pristine, tmp_path)
+    _, original = pristine
+    tables = {n: pq.read_table(folder / n) for n in FILES}
+
+    @FUZZ
+    @given(name=st.sampled_from(FILES), data=st.data(), reseal=st.booleans())
+    def case(name, data, reseal):
+        for n in FILES:
+            (folder / n).write_bytes(original[n])
+        rows = data.draw(st.integers(0, 6))
+        expected = golden._schema_of(name)
+        columns = {}
+        for field in expected:  # start from the right schema, then change some columns
+            choice = data.draw(st.integers(0, 3))
+            if choice == 0:
+                continue  # missing column
+            arrow_type = field.type if choice == 1 else data.draw(_types)
+            columns[field.name if choice != 3 else data.draw(_names)] = _random_array(data, arrow_type, rows)
+        if data.draw(st.booleans()):
+            columns[data.draw(_names)] = _random_array(data, data.draw(_types), rows)
+        md = dict(tables[name].schema.metadata)
+        try:
+            table = pa.table(columns) if columns else pa.table({"x": pa.array([], pa.int64())})
+        except (pa.ArrowException, ValueError):
+            return
+        try:
+            if reseal:
+                md[golden.KEY_DIGEST] = golden.content_digest(name, table, md).encode()
+        except TypeError:
+            pass  # a type the digest has no canonical form for: keep the old digest
+        try:
+            pq.write_table(table.replace_schema_metadata(md), folder / name)
+        except (pa.ArrowException, ValueError):
+            return  # a table Parquet cannot store is no test of the reader
+        tally.read(folder)
+
+    case()
+    tally.report()
+
+
+# -- 4. random cell values in the right schema -----------------------------------------------------
+
+
+def test_fuzz_cell_values_behind_a_valid_digest(pristine, tmp_path):
+    tally = Tally("cell values")
+    folder = _fresh(pristine, tmp_path)
+    _, original = pristine
+    tables = {n: pq.read_table(folder / n) for n in FILES}
+
+    @FUZZ
+    @given(name=st.sampled_from(FILES), data=st.data())
+    def case(name, data):
+        for n in FILES:
+            (folder / n).write_bytes(original[n])
+        table = tables[name]
+        for _ in range(data.draw(st.integers(1, 3))):
+            field = table.schema.field(data.draw(st.integers(0, table.num_columns - 1)))
+            rows = table.num_rows
+            if data.draw(st.booleans()):
+                array = _random_array(data, field.type, rows)
+            else:  # one cell changed, the rest intact
+                cells = table.column(field.name).to_pylist()
+                one = pa.array([], field.type)
+                while len(one) == 0:
+                    one = _random_array(data, field.type, 1)
+                cells[data.draw(st.integers(0, rows - 1))] = one.to_pylist()[0]
+                array = pa.array(cells, field.type)
+            table = table.set_column(table.schema.get_field_index(field.name), field.name, array)
+        md = dict(tables[name].schema.metadata)
+        md[golden.KEY_DIGEST] = golden.content_digest(name, table, md).encode()
+        pq.write_table(table.replace_schema_metadata(md), folder / name)
+        tally.read(folder)
+
+    case()
+    tally.report()
