@@ -188,14 +188,16 @@ class Trajectory:
             shape = tuple(int(d) for d in array.shape)
             numel = int(array.size)
         keep_values = numel <= self.max_values
-        st, sketch = checksum.summarize(array, 0 if keep_values else checksum.STATE_SKETCH)
+        # One call: for large tensors the digest is computed in a background thread while the
+        # statistics and sketch are computed here (same results as separate calls).
+        digest, st, sketch = checksum.describe(array, 0 if keep_values else checksum.STATE_SKETCH)
         values = checksum.values_float64(array) if keep_values else None
         return TensorRecord(
             name=name,
             kind=kind,
             dtype=dtype,
             shape=shape,
-            sha256=checksum.sha256_hex(array),
+            sha256=digest,
             min=st.min,
             max=st.max,
             mean=st.mean,

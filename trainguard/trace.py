@@ -80,10 +80,10 @@ class Tracer:
     # -- recording -------------------------------------------------------------------
     def _add(self, stage: str, call: int, name: str, tensor: Any) -> None:
         tensor = tensor.detach()
-        st, sketch = checksum.summarize(tensor, checksum.TRACE_SKETCH)
+        digest, st, sketch = checksum.describe(tensor, checksum.TRACE_SKETCH)
         self.entries.append(TraceEntry(
             self.step, stage, self._seq, call, name + self._suffix(call), str(tensor.dtype).replace("torch.", ""),
-            tuple(int(d) for d in tensor.shape), checksum.sha256_hex(tensor),
+            tuple(int(d) for d in tensor.shape), digest,
             st.min, st.max, st.mean, st.l2, st.nonfinite, sketch,
         ))
         self._seq += 1
