@@ -65,7 +65,8 @@ def row_for(result: Any, report_dir: Path | None = None) -> dict[str, Any]:
     """
     cmp = result.comparison
     env = environment_changes(cmp.golden_meta.get("fingerprint"), cmp.new_meta.get("fingerprint")) if cmp else []
-    row = Row(result.nodeid, result.outcome, first_divergence(cmp), env, blessing=result.blessing)
+    divergence = getattr(result, "divergence", "") or first_divergence(cmp)  # set for nondeterministic runs
+    row = Row(result.nodeid, result.outcome, divergence, env, blessing=result.blessing)
     data = asdict(row)
     data["folder"] = result.folder
     data["plots_unavailable"] = False
@@ -90,7 +91,8 @@ def _md_escape(text: str) -> str:
     return text.replace("|", "\\|").replace("\n", " ")
 
 
-_ICON = {IDENTICAL: "identical", CLOSE: "within tolerance", CHANGED: "**changed**"}
+_ICON = {IDENTICAL: "identical", CLOSE: "within tolerance", CHANGED: "**changed**",
+         "nondeterministic": "**nondeterministic**"}
 
 
 def summary_markdown(rows: list[Row], plots_note: str = "") -> str:
@@ -104,8 +106,8 @@ def summary_markdown(rows: list[Row], plots_note: str = "") -> str:
     else:
         lines.append(", ".join(f"{n} {k}" for k, n in counts.items()) + f" (of {len(checks)} guarded tests)")
         lines += ["", "| test | outcome | first divergence | environment changes |", "| --- | --- | --- | --- |"]
-        order = {CHANGED: 0, "no golden": 1, "unreadable golden": 2, CLOSE: 3, IDENTICAL: 4}
-        for r in sorted(checks, key=lambda r: (order.get(r.outcome, 5), r.nodeid)):
+        order = {CHANGED: 0, "nondeterministic": 1, "no golden": 2, "unreadable golden": 3, CLOSE: 4, IDENTICAL: 5}
+        for r in sorted(checks, key=lambda r: (order.get(r.outcome, 6), r.nodeid)):
             div = _md_escape(r.divergence) or "-"
             if r.plot:
                 div += f" ([plot]({quote(r.plot)}))"
@@ -118,10 +120,21 @@ def summary_markdown(rows: list[Row], plots_note: str = "") -> str:
     return "\n".join(lines) + "\n"
 
 
+def _temp_name(path: Path) -> Path:
+    """A temp file beside `path`, unique per process and call (readers and cleaners skip '.tmp-')."""
+    import uuid
+
+    return path.with_name(f".tmp-{path.name}.{os.getpid()}.{uuid.uuid4().hex[:12]}")
+
+
 def _atomic_text(path: Path, text: str) -> None:
-    tmp = path.with_name(f".tmp-{path.name}.{os.getpid()}")
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, path)
+    tmp = _temp_name(path)
+    try:
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
 
 
 PLOTS_NOTE = ("Plots of changed trajectories need matplotlib: `pip install 'trainguard[report]'`, "
@@ -133,6 +146,8 @@ def write_report(report_dir: str | os.PathLike[str], rows: list[dict[str, Any]])
     report_dir = Path(report_dir)
     report_dir.mkdir(parents=True, exist_ok=True)
     note = PLOTS_NOTE if any(r.get("plots_unavailable") for r in rows) else ""
+    # Sorted: under pytest-xdist rows arrive in completion order, which changes from run to run.
+    rows = sorted(rows, key=lambda r: (r["nodeid"], bool(r.get("blessing"))))
     _atomic_text(report_dir / SUMMARY_MD, summary_markdown([_row(r) for r in rows], note))
     payload = {"format": REPORT_FORMAT, "rows": rows}
     _atomic_text(report_dir / SUMMARY_JSON, json.dumps(payload, indent=1, sort_keys=True))
@@ -160,15 +175,31 @@ def read_rows(report_dir: str | os.PathLike[str]) -> list[dict[str, Any]]:
 
 
 def merge_reports(sources: list[str | os.PathLike[str]], out: str | os.PathLike[str]) -> tuple[Path, int]:
-    """Merge the report folders of CI shards into one: rows, and their plots copied along."""
+    """Merge the report folders of CI shards into one: rows, and their plots copied along.
+
+    Everything is read and checked before anything is written, so an error leaves `out` as it was.
+    """
     import shutil
 
     from .errors import TrainguardError
 
     out = Path(out)
-    merged: dict[str, dict[str, Any]] = {}
+    seen: dict[Path, str] = {}
     for source in sources:
-        for row in read_rows(source):
+        real = Path(source).resolve()
+        if real in seen:
+            also = "" if seen[real] == str(source) else f" (also as {seen[real]})"
+            raise TrainguardError(f"{source}: report folder given twice{also}; name each shard's folder once")
+        if real == out.resolve():
+            raise TrainguardError(f"{source}: the output folder cannot also be a report folder to merge; "
+                                  "choose another --out")
+        seen[real] = str(source)
+    rows_by_source = [(source, read_rows(source)) for source in sources]
+    merged: dict[str, dict[str, Any]] = {}
+    copies: list[tuple[Path, Path]] = []
+    plot_names: set[str] = set()
+    for source, source_rows in rows_by_source:
+        for row in source_rows:
             key = f"{row['nodeid']}|{row.get('blessing', False)}"
             if key in merged:
                 raise TrainguardError(f"{row['nodeid']} appears in more than one report (again in {source}); "
@@ -179,10 +210,16 @@ def merge_reports(sources: list[str | os.PathLike[str]], out: str | os.PathLike[
                 if Path(plot).is_absolute() or ".." in Path(plot).parts or not src.is_file():
                     row = {**row, "plot": None}
                 else:
-                    (out / PLOTS).mkdir(parents=True, exist_ok=True)
-                    shutil.copyfile(src, out / PLOTS / Path(plot).name)
-                    row = {**row, "plot": f"{PLOTS}/{Path(plot).name}"}
+                    name = Path(plot).name
+                    if name in plot_names:  # distinct node ids, same escaped file name: keep both
+                        name = f"{Path(name).stem}-{len(plot_names)}{Path(name).suffix}"
+                    plot_names.add(name)
+                    copies.append((src, out / PLOTS / name))
+                    row = {**row, "plot": f"{PLOTS}/{name}"}
             merged[key] = row
+    for src, dst in copies:
+        dst.parent.mkdir(parents=True, exist_ok=True)
+        shutil.copyfile(src, dst)
     rows = sorted(merged.values(), key=lambda r: r["nodeid"])
     return write_report(out, rows), len(rows)
 
@@ -218,6 +255,12 @@ def plot_trajectories(path: Path, title: str, golden: Any, new: Any) -> bool:
     fig.suptitle(title, fontsize=9)
     fig.tight_layout()
     path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, dpi=90)
-    plt.close(fig)
+    tmp = _temp_name(path)  # pytest-xdist workers write plots side by side: atomically, each its own
+    try:
+        fig.savefig(tmp, dpi=90, format="png")
+        os.replace(tmp, path)
+    finally:
+        plt.close(fig)
+        if tmp.exists():
+            tmp.unlink()
     return True
