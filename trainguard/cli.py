@@ -252,7 +252,148 @@ def cmd_merge_reports(args: argparse.Namespace) -> int:
     return 0
 
 
+# -- prune -----------------------------------------------------------------------------
+
+
+def collect_nodeids(pytest_args: Sequence[str]) -> list[str]:
+    """Node ids of the tests pytest collects with `pytest_args`, from a `--collect-only -q` subprocess."""
+    import shlex
+    import subprocess
+
+    cmd = [sys.executable, "-m", "pytest", "--collect-only", "-q", "-p", "no:cacheprovider", *pytest_args]
+    shown = shlex.join(["python", *cmd[1:]])
+    try:
+        proc = subprocess.run(cmd, capture_output=True, text=True, errors="replace")
+    except OSError as exc:
+        raise TrainguardError(f"could not start pytest ({exc}); nothing was removed") from None
+    lines = proc.stdout.splitlines()
+    if proc.returncode == 5:
+        raise TrainguardError(f"pytest collected no tests ({shown}), so every golden would count as unused; "
+                              "nothing was removed. Run prune from the project root, with the arguments that "
+                              "select your whole suite (or none)")
+    if proc.returncode != 0:
+        errors = [line for line in lines if line.startswith(("ERROR", "E   "))][:8]
+        detail = errors or [line for line in (lines + proc.stderr.splitlines()) if line.strip()][-8:]
+        raise TrainguardError("collecting the tests failed (pytest exit status "
+                              f"{proc.returncode}); nothing was removed. pytest said:\n  " + "\n  ".join(detail)
+                              + f"\nFix that, then re-run; to see pytest's full output: {shown}")
+    nodeids = []
+    for line in lines:
+        if not line.strip():
+            break  # the node ids end at the first blank line; "N tests collected" and warnings follow
+        if "::" in line:
+            nodeids.append(line)
+    return nodeids
+
+
+_GOLDEN_ENTRIES = ("metrics.parquet", "state.parquet", "trace.parquet", ".trainguard-commit", ".trainguard-lock")
+
+
+def _inside_without_links(folder: Path, root: Path) -> bool:
+    """`folder` lies below `root`, and neither it nor any folder between them is a symbolic link."""
+    try:
+        rel = folder.relative_to(root)
+    except ValueError:
+        return False
+    if not rel.parts or ".." in rel.parts:
+        return False
+    current = root
+    for part in rel.parts:
+        current = current / part
+        if current.is_symlink() or not current.is_dir():
+            return False
+    return True
+
+
+def _remove_golden(folder: Path, root: Path) -> bool:
+    """Delete one golden folder's files (symbolic links are unlinked, never followed), then the empty
+    folders up to `root`. A folder that also holds subfolders keeps them and everything but its golden files."""
+    import os
+
+    if not _inside_without_links(folder, root):
+        return False
+    entries = list(os.scandir(folder))
+    nested = any(e.is_dir(follow_symlinks=False) for e in entries)
+    for entry in entries:
+        if entry.is_dir(follow_symlinks=False):
+            continue
+        if nested and entry.name not in _GOLDEN_ENTRIES and not entry.name.startswith(".tmp-"):
+            continue
+        os.unlink(entry.path)
+    current = folder
+    while current != root:
+        try:
+            current.rmdir()  # only when empty
+        except OSError:
+            break
+        current = current.parent
+    return True
+
+
+def _shown(path: Path) -> str:
+    """`path` relative to the current folder when it lies below it."""
+    try:
+        return str(path.absolute().relative_to(Path.cwd()))
+    except ValueError:
+        return str(path)
+
+
+def cmd_prune(args: argparse.Namespace) -> int:
+    from . import golden
+    from .paths import golden_folder
+
+    pytest_args = list(args.pytest_args)
+    if pytest_args[:1] == ["--"]:
+        pytest_args = pytest_args[1:]
+    misplaced = [a for a in pytest_args if a in ("--delete", "--golden-dir") or a.startswith("--golden-dir=")]
+    if misplaced:
+        raise TrainguardError(f"{misplaced[0]} came after the pytest arguments, where it would go to pytest; "
+                              f"put it first: trainguard prune {misplaced[0]} ... [PYTEST ARGS]")
+    golden_dir = Path(args.golden_dir) if args.golden_dir else default_golden_dir()
+    if golden_dir.is_symlink() and args.delete:
+        raise TrainguardError(f"{golden_dir} is a symbolic link; prune --delete does not follow links. "
+                              f"Give the real folder: trainguard prune --delete --golden-dir {golden_dir.resolve()}")
+    if not golden_dir.is_dir():
+        raise TrainguardError(f"{golden_dir}: no such golden folder; give it with --golden-dir DIR")
+    nodeids = collect_nodeids(pytest_args)
+    used = {golden_folder(golden_dir, nodeid) for nodeid in nodeids}
+    found = golden.find_goldens(golden_dir)
+    unused = [folder for folder in found if folder not in used]
+    print(f"{len(found)} golden folder(s) under {golden_dir}, {len(nodeids)} test(s) collected: "
+          f"{len(unused)} golden folder(s) used by no collected test")
+    if not unused:
+        return 0
+    if not args.delete:
+        for folder in unused:
+            print(f"  {_shown(folder)}")
+        extra = " ".join(pytest_args)
+        print("remove them with: trainguard prune --delete"
+              + (f" --golden-dir {args.golden_dir}" if args.golden_dir else "") + (f" {extra}" if extra else ""))
+        return 1
+    for folder in unused:
+        if _remove_golden(folder, golden_dir):
+            print(f"  removed {_shown(folder)}")
+        else:
+            print(f"  skipped {_shown(folder)} (not a real folder inside {golden_dir}: a symbolic link is on its path)")
+    return 0
+
+
 # -- demo ------------------------------------------------------------------------------
+
+
+def cmd_upgrade_goldens(args: argparse.Namespace) -> int:
+    from . import golden
+    from .report import table
+
+    root = Path(args.dir) if args.dir else default_golden_dir()
+    done = golden.upgrade_goldens(root)
+    if not done:
+        raise TrainguardError(f"{root}: holds no golden files (no {golden.METRICS_FILE} below it)")
+    upgraded = sum(1 for _, outcome in done if outcome != "current")
+    print(f"{upgraded} of {len(done)} golden folder(s) under {root} upgraded to format {golden.FORMAT_VERSION}"
+          + (" (nothing to do)" if not upgraded else ""))
+    print(table(["golden", "format"], [[str(f.relative_to(root)), o] for f, o in done]))
+    return 0
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -324,6 +465,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("dirs", nargs="+", metavar="DIR", help="report folders (each with summary.json)")
     p.add_argument("--out", required=True, metavar="DIR", help="folder for the merged summary.md, summary.json, plots")
     p.set_defaults(func=cmd_merge_reports)
+    p = sub.add_parser("prune", help="list (or --delete) golden folders that no collected test uses")
+    p.add_argument("--golden-dir", help="golden folder (default: the ini option trainguard_golden_dir, else ./golden)")
+    p.add_argument("--delete", action="store_true", help="remove the unused golden folders (links are never followed)")
+    p.add_argument("pytest_args", nargs=argparse.REMAINDER, metavar="PYTEST ARGS",
+                   help="arguments for the collecting pytest run (after trainguard's own options; '--' first "
+                        "if they start with '-'), e.g. tests/")
+    p.set_defaults(func=cmd_prune)
+    p = sub.add_parser("upgrade-goldens", help="convert goldens written by an older trainguard to the current "
+                       "format (adds content digests); idempotent, each folder switched atomically")
+    p.add_argument("dir", nargs="?", metavar="DIR",
+                   help="golden dir (default: the ini option trainguard_golden_dir, else ./golden)")
+    p.set_defaults(func=cmd_upgrade_goldens)
     p = sub.add_parser("env", help="print this machine's environment fingerprint")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_env)

@@ -10,6 +10,7 @@ from __future__ import annotations
 import datetime as _dt
 import os
 import shlex
+import warnings
 from pathlib import Path
 from typing import Any, Iterator
 
@@ -20,6 +21,7 @@ FIXTURE = "trajectory"
 
 _SESSION_KEY = pytest.StashKey["GuardSession"]()
 _ITEM_KEY = pytest.StashKey["_Pending"]()
+_NODEID_KEY = pytest.StashKey[str]()
 #: The session of the current pytest run; pytest_runtest_logreport receives no config.
 _current_session: "GuardSession | None" = None
 
@@ -43,9 +45,14 @@ def pytest_addoption(parser: pytest.Parser) -> None:
                     help="turn torch's deterministic mode off in every guarded test (to measure noise)")
     group.addoption("--trainguard-shard", metavar="K/N", default=None,
                     help="run only shard K of N of the guarded tests (stable: chosen by a hash of each node id)")
+    group.addoption("--trainguard-repeat", metavar="N", type=int, default=1,
+                    help="run the body of each guarded test N times with the same seed and settings; runs that "
+                         "differ bit for bit fail as 'nondeterministic' (default 1)")
     parser.addini("trainguard_golden_dir", "folder of golden files, relative to rootdir", default="golden")
     parser.addini("trainguard_rtol", "default relative tolerance of guarded tests", default="")
     parser.addini("trainguard_atol", "default absolute tolerance of guarded tests", default="")
+    parser.addini("trainguard_max_file_mib", "golden files larger than this many MiB are refused before loading",
+                  default="512")
     parser.addini("trainguard_max_values", "tensors up to this many elements keep their values in the golden",
                   default="")
 
@@ -56,6 +63,10 @@ def pytest_configure(config: pytest.Config) -> None:
         "trainguard(seed=0, rtol=None, atol=None, exact=False, metrics=None, deterministic=True): "
         "guard a seeded training run with golden files (use the 'trajectory' fixture)",
     )
+    raw_shard = config.getoption("--trainguard-shard", None)
+    if raw_shard:
+        parse_shard(raw_shard)  # here, not only at collection: under xdist only workers collect
+    check_workflow_options(config)
     global _current_session
     session = GuardSession(config)
     config.stash[_SESSION_KEY] = session
@@ -75,6 +86,8 @@ class _Pending:
         self.trajectory = trajectory
         self.settings = settings
         self.fingerprint = fingerprint
+        self.repeats: list[Any] = []  # Runs of the repeats (--trainguard-repeat), after the first run
+        self.alerts: list[str] = []  # torch's deterministic-mode warnings during the runs
 
 
 class GuardSession:
@@ -116,10 +129,34 @@ def parse_shard(raw: str) -> tuple[int, int]:
         k_text, n_text = raw.split("/")
         k, n = int(k_text), int(n_text)
     except ValueError:
-        raise pytest.UsageError(f"--trainguard-shard {raw!r}: expected K/N such as 1/4") from None
+        raise pytest.UsageError(f"--trainguard-shard {raw!r}: expected K/N with whole numbers, such as 1/4") from None
+    if n < 1:
+        raise pytest.UsageError(f"--trainguard-shard {raw!r}: N (the number of shards) must be at least 1")
     if not 1 <= k <= n:
-        raise pytest.UsageError(f"--trainguard-shard {raw!r}: K must be between 1 and N")
+        raise pytest.UsageError(f"--trainguard-shard {raw!r}: K must be between 1 and N ({n}); shards count from 1")
     return k, n
+
+
+def ci_enabled(environ: Any = None) -> bool:
+    """True in CI: the CI environment variable is set, non-empty and not "0" or "false"."""
+    value = (os.environ if environ is None else environ).get("CI", "")
+    return value.strip().lower() not in ("", "0", "false")
+
+
+def check_workflow_options(config: pytest.Config) -> None:
+    """Usage errors found before any test runs: a bad --trainguard-repeat, a bless in CI without a reason."""
+    repeat = config.getoption("--trainguard-repeat", 1)
+    if repeat is not None and repeat < 1:
+        raise pytest.UsageError(f"--trainguard-repeat {repeat}: N must be at least 1 "
+                                "(1 runs each guarded test once, as without the option)")
+    if config.getoption("--trainguard-bless", False) and ci_enabled() \
+            and not (config.getoption("--trainguard-reason", None) or "").strip():
+        args = [str(a) for a in config.invocation_params.args]
+        command = shlex.join(["pytest", *args, "--trainguard-reason", "describe the intended change"])
+        raise pytest.UsageError(
+            f"--trainguard-bless in CI (the CI environment variable is {os.environ.get('CI', '')!r}) needs an "
+            "explicit --trainguard-reason, which is stored in the goldens for review; nothing was written. "
+            f"Re-run with a reason:\n  {command}")
 
 
 def shard_of(nodeid: str, n: int) -> int:
@@ -127,6 +164,18 @@ def shard_of(nodeid: str, n: int) -> int:
     import hashlib
 
     return int.from_bytes(hashlib.sha256(nodeid.encode("utf-8")).digest()[:8], "big") % n + 1
+
+
+def pytest_itemcollected(item: pytest.Item) -> None:
+    # Remember the node id as collected: with --dist loadgroup, pytest-xdist (on pytest < 9.2)
+    # appends "@<group>" to the node ids of xdist_group tests in its collection hook, which must
+    # change neither a test's golden folder nor its shard.
+    item.stash[_NODEID_KEY] = item.nodeid
+
+
+def guard_nodeid(item: pytest.Item) -> str:
+    """The node id goldens, shards and reports use: the id as collected."""
+    return item.stash.get(_NODEID_KEY, item.nodeid)
 
 
 def is_guarded(item: pytest.Item) -> bool:
@@ -140,7 +189,7 @@ def pytest_collection_modifyitems(session: pytest.Session, config: pytest.Config
     k, n = parse_shard(raw)
     keep, drop = [], []
     for item in items:
-        (drop if is_guarded(item) and shard_of(item.nodeid, n) != k else keep).append(item)
+        (drop if is_guarded(item) and shard_of(guard_nodeid(item), n) != k else keep).append(item)
     if drop:
         config.hook.pytest_deselected(items=drop)
         items[:] = keep
@@ -190,8 +239,15 @@ def pytest_runtest_call(item: pytest.Item) -> Iterator[None]:
     if marker is not None and FIXTURE not in getattr(item, "fixturenames", ()):
         _fail(f"{item.nodeid} is marked @pytest.mark.trainguard but does not use the 'trajectory' fixture; "
               "add a 'trajectory' argument to the test and log to it")
+    pending = item.stash.get(_ITEM_KEY, None)
+    repeat = item.config.getoption("--trainguard-repeat", 1) or 1
     try:
-        result = yield
+        if pending is None or repeat < 2:
+            result = yield
+        else:
+            with _Repeats(item, pending, repeat) as repeats:
+                result = yield
+                repeats.run_again()
     except RuntimeError as exc:
         from .determinism import is_nondeterminism_error
 
@@ -201,31 +257,99 @@ def pytest_runtest_call(item: pytest.Item) -> Iterator[None]:
                   "hint: use an op with a deterministic implementation, or accept run-to-run noise with "
                   "@pytest.mark.trainguard(deterministic='warn') (warns) or deterministic=False, and a tolerance")
         raise
-    pending = item.stash.get(_ITEM_KEY, None)
     if pending is not None:
         _finish(item, pending)
     return result
 
 
+class _Repeats:
+    """`--trainguard-repeat N`: runs a guarded test's body N-1 more times and records torch's warnings.
+
+    What is re-run: the test function itself (`item.runtest()`), each time with a fresh
+    `Trajectory` and with every global put back to the state the first run's body started
+    from (RNGs as seeded, deterministic flags, threads, dtype, ...; see `GlobalState`).
+    What is not: fixtures. They are set up once and their values are shared by all runs,
+    so a test that trains an object a fixture returns trains it further in each run.
+    """
+
+    def __init__(self, item: pytest.Item, pending: _Pending, count: int) -> None:
+        self.item, self.pending, self.count = item, pending, count
+
+    def __enter__(self) -> "_Repeats":
+        from .determinism import GlobalState
+
+        self.start = GlobalState.capture()  # seeded and pinned, after every fixture: where each body starts
+        self.catcher = warnings.catch_warnings(record=True)
+        self.records = self.catcher.__enter__()
+        return self
+
+    def run_again(self) -> None:
+        import torch
+
+        from .capture import Trajectory
+
+        funcargs = self.item.funcargs  # type: ignore[attr-defined]
+        first = funcargs[FIXTURE]
+        if FIXTURE not in getattr(getattr(self.item, "_fixtureinfo", None), "argnames", ()):
+            _fail(f"{guard_nodeid(self.item)}: --trainguard-repeat gives each run a fresh 'trajectory' argument, but "
+                  "this test gets the trajectory through another fixture; add a 'trajectory' argument to the test "
+                  "and pass it on, or run it without --trainguard-repeat")
+        try:
+            for _ in range(self.count - 1):
+                self.start.restore()
+                if self.start.cuda_rng is None and torch.cuda.is_available() and torch.cuda.is_initialized():
+                    torch.cuda.manual_seed_all(self.pending.settings.seed)  # CUDA started during run 1: seed it as then
+                traj = Trajectory(max_values=first.max_values)
+                funcargs[FIXTURE] = traj
+                try:
+                    self.item.runtest()
+                finally:
+                    traj.close()
+                self.pending.repeats.append(traj.to_run())
+        finally:
+            funcargs[FIXTURE] = first
+
+    def __exit__(self, *exc_info: Any) -> bool:
+        from .guard import is_determinism_alert
+
+        self.catcher.__exit__(*exc_info)
+        seen = set()
+        for w in self.records:
+            key = (str(w.message), w.category, w.filename, w.lineno)
+            if key in seen:
+                continue
+            seen.add(key)
+            try:  # hand each warning on (once) to pytest's own warning capture and summary
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno, source=w.source)
+            except Exception:  # a filter turned it into an error after the test had warned: it was seen
+                pass
+            text = str(w.message).strip()
+            if is_determinism_alert(text):
+                first_line = text.splitlines()[0] if text else text
+                self.pending.alerts.append(f"{w.category.__name__}: {first_line} ({os.path.basename(w.filename)}:{w.lineno})")
+        return False
+
+
 def _finish(item: pytest.Item, pending: _Pending) -> None:
     __tracebackhide__ = True
-    from . import guard, paths
+    from . import golden, guard, paths
 
     session: GuardSession = item.config.stash[_SESSION_KEY]
+    nodeid = guard_nodeid(item)
     traj = pending.trajectory
     settings = pending.settings
     traj.close()
     run = traj.to_run()
     if run.is_empty:
-        _fail(f"{item.nodeid}: the guarded test recorded nothing; call trajectory.log(step, loss=...) "
+        _fail(f"{nodeid}: the guarded test recorded nothing; call trajectory.log(step, loss=...) "
               "or trajectory.state(model, optimizer=opt) in it")
     unknown = sorted(set(settings.policy.metrics or {}) - set(run.metrics))
     if unknown:
-        _fail(f"{item.nodeid}: the marker's metrics= names {', '.join(map(repr, unknown))}, which the test never "
+        _fail(f"{nodeid}: the marker's metrics= names {', '.join(map(repr, unknown))}, which the test never "
               f"logged (logged: {', '.join(run.metrics) or 'none'}); fix the name in the marker")
     bless = item.config.getoption("--trainguard-bless")
     run.meta = {
-        "nodeid": item.nodeid,
+        "nodeid": nodeid,
         "seed": settings.seed,
         "deterministic": settings.deterministic,
         "tolerances": settings.policy.to_json(),
@@ -234,23 +358,65 @@ def _finish(item: pytest.Item, pending: _Pending) -> None:
         "blessed_at": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "reason": item.config.getoption("--trainguard-reason") or "",
     }
-    folder = paths.golden_folder(session.golden_dir(), item.nodeid)
-    if bless:
-        result = guard.bless(item.nodeid, run, folder, settings.policy, base=session.rootpath)
+    folder = paths.golden_folder(session.golden_dir(), nodeid)
+    repeated = None
+    if pending.repeats:
+        repeated = guard.check_repeats(nodeid, [run, *pending.repeats], folder, base=session.rootpath,
+                                       hints=_repeat_hints(item, nodeid, pending))
+    if repeated is not None:
+        result = repeated
+    elif bless:
+        result = guard.bless(nodeid, run, folder, settings.policy, base=session.rootpath, root=session.golden_dir(),
+                             max_bytes=golden.max_bytes_from_ini(item.config.getini("trainguard_max_file_mib")))
     else:
-        result = guard.check(item.nodeid, run, folder, settings.policy, session.bless_command(item.nodeid),
-                             base=session.rootpath, use_calibrated=not settings.marker_tolerance)
+        result = guard.check(nodeid, run, folder, settings.policy, session.bless_command(nodeid),
+                             base=session.rootpath, use_calibrated=not settings.marker_tolerance,
+                             max_bytes=golden.max_bytes_from_ini(item.config.getini("trainguard_max_file_mib")),
+                             root=session.golden_dir())
+    if result.outcome == guard.NO_GOLDEN and ci_enabled():
+        result.message += (f"\nThis is a CI run (the CI environment variable is {os.environ.get('CI', '')!r}): goldens "
+                           "are never created in CI. Run the command above on your machine, review the new golden "
+                           f"and commit it (git add {shlex.quote(result.folder)}).")
     results_dir = item.config.getoption("--trainguard-results")
-    if results_dir and not bless and result.outcome != guard.IDENTICAL:
+    if results_dir and not bless and result.outcome not in (guard.IDENTICAL, guard.NONDETERMINISTIC):
         from .results import write_result
 
-        write_result(session.resolve(results_dir), item.nodeid, run)
+        write_result(session.resolve(results_dir), nodeid, run)
     from .report_files import row_for
 
     report_dir = item.config.getoption("--trainguard-report")
     item.user_properties.append(("trainguard", row_for(result, session.resolve(report_dir) if report_dir else None)))
     if result.failed:
         _fail(result.message)
+
+
+def _repeat_hints(item: pytest.Item, nodeid: str, pending: _Pending) -> list[str]:
+    """What to look at when the repeats of a test disagree."""
+    settings = pending.settings
+    off = item.config.getoption("--trainguard-nondeterministic") or not settings.deterministic
+    hints = []
+    if pending.alerts:
+        hints.append("hint: torch warned during the runs that ops ran without a deterministic implementation "
+                     f"(deterministic={settings.deterministic!r}):")
+        hints += [f"    {alert}" for alert in pending.alerts[:5]]
+        hints.append("  use ops with deterministic kernels, or deterministic=True to make torch raise at the op")
+    elif off:
+        hints.append("hint: deterministic mode was off for this test ("
+                     + ("--trainguard-nondeterministic" if settings.deterministic else "deterministic=False")
+                     + "), so torch may pick kernels that add in a different order on each run; "
+                     "try @pytest.mark.trainguard(deterministic='warn') to have torch name them")
+    shared = [name for name in getattr(item, "fixturenames", ()) if name not in (FIXTURE, "request")]
+    if shared:
+        hints.append(f"note: only the test body is re-run; fixtures ({', '.join(shared)}) were set up once and "
+                     "shared by all runs: if the test trains or changes an object a fixture returns, build it in "
+                     "the test body instead")
+    if not pending.alerts and not off:
+        hints.append("hint: torch reported no op without a deterministic implementation, so the test reads something "
+                     "that changes between runs: the clock (time.time, time.perf_counter_ns), os.urandom or secrets, "
+                     "an unseeded generator (numpy.random.default_rng(), torch.Generator() without manual_seed), "
+                     "iteration over a set of strings, or threads racing")
+    hints.append(f"hint: if some noise is expected, measure it and get a tolerance: trainguard calibrate {shlex.quote(nodeid)}")
+    return hints
 
 
 def pytest_runtest_logreport(report: pytest.TestReport) -> None:

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from typing import Any, Iterable
 
-_CHECK_ORDER = ("identical", "within tolerance", "changed", "no golden", "unreadable golden")
-_BLESS_ORDER = ("new", "changed", "unchanged")
+_CHECK_ORDER = ("identical", "within tolerance", "changed", "nondeterministic", "no golden", "unreadable golden")
+_BLESS_ORDER = ("new", "changed", "unchanged", "nondeterministic")
 
 
 def summary_lines(rows: Iterable[dict[str, Any]]) -> list[str]:
@@ -24,5 +24,8 @@ def summary_lines(rows: Iterable[dict[str, Any]]) -> list[str]:
         parts = [f"{n} {k}" for k in _BLESS_ORDER if (n := sum(r["outcome"] == k for r in blesses))]
         lines.append(f"goldens blessed: {len(blesses)} ({', '.join(parts)})")
         for r in blesses:
-            lines.append(f"  {r['outcome']:<9} {r['nodeid']} -> {r.get('folder', '')}")
+            if r["outcome"] == "nondeterministic":  # its runs disagreed: nothing was written
+                lines.append(f"  {r['outcome']:<9} {r['nodeid']} (not blessed: its repeated runs differ)")
+            else:
+                lines.append(f"  {r['outcome']:<9} {r['nodeid']} -> {r.get('folder', '')}")
     return lines
