@@ -393,7 +393,7 @@ HOSTILE = {
     "truncated by half": ("metrics.parquet", lambda p: p.write_bytes(p.read_bytes()[: len(p.read_bytes()) // 2]), "Parquet"),
     "footer claims 2 GiB": ("state.parquet", lambda p: _footer_claims(p, 0x7FFFFFFF), "not a readable Parquet file"),
     "footer claims 0 bytes": ("trace.parquet", lambda p: _footer_claims(p, 0), "not a readable Parquet file"),
-    "a flipped byte in the data": ("trace.parquet", lambda p: p.write_bytes(bytes([b ^ 0x10 if i == 200 else b for i, b in enumerate(p.read_bytes())])), ""),
+    "a flipped byte in the data": ("trace.parquet", lambda p: p.write_bytes(bytes([b ^ 0x10 if i == 100 else b for i, b in enumerate(p.read_bytes())])), ""),
     "not parquet at all": ("metrics.parquet", lambda p: p.write_bytes(b"PAR1" + b"\x00" * 64 + b"PAR1"), "not a readable Parquet file"),
     "column missing": ("metrics.parquet", lambda p: rewrite(p, pq.read_table(p).drop_columns(["value"]), reseal=True), "has no column 'value'"),
     "column of the wrong type": ("metrics.parquet", lambda p: rewrite(p, pq.read_table(p).set_column(1, "step", pa.array([1.5] * pq.read_table(p).num_rows)), reseal=True), "column 'step' has type double, expected int64"),
