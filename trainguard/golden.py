@@ -982,10 +982,27 @@ def _metrics_from_table(path: Path, table: Any) -> dict[str, MetricSeries]:
     return out
 
 
+def _list_cells(table: Any, column: str) -> list[np.ndarray | None]:
+    """A list<float64> column as one NumPy array per row (None for null), without Python floats.
+
+    Null elements inside a list read as NaN, as the per-element path did.
+    """
+    if column not in table.column_names:
+        return [None] * table.num_rows
+    arr = table.column(column).combine_chunks()
+    offsets = arr.offsets.to_numpy()
+    flat = arr.values.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
+    nulls = arr.is_null().to_numpy(zero_copy_only=False)
+    return [None if nulls[i] else flat[offsets[i]:offsets[i + 1]].copy() for i in range(len(arr))]
+
+
 def _tensors_from_table(path: Path, table: Any) -> dict[str, TensorRecord]:
-    rows = table.to_pylist()
+    values_cells = _list_cells(table, "values")
+    sketch_cells = _list_cells(table, "sketch")
+    rows = table.drop_columns([c for c in ("values", "sketch") if c in table.column_names]).to_pylist()
     out: dict[str, TensorRecord] = {}
     for i, row in enumerate(rows):
+        row["values"], row["sketch"] = values_cells[i], sketch_cells[i]
         name = row["name"]
         if not isinstance(name, str) or not name:
             raise GoldenCorruptError(path, f"row {i} has no tensor name")
@@ -1004,7 +1021,6 @@ def _tensors_from_table(path: Path, table: Any) -> dict[str, TensorRecord]:
         if values is not None:
             if len(values) != numel and len(values) != 2 * numel:  # complex tensors store real and imaginary parts
                 raise GoldenCorruptError(path, f"tensor {name!r}: {len(values)} stored values for {numel} elements")
-            values = np.array([math.nan if v is None else v for v in values], dtype=np.float64)
         floats = [math.nan if row[c] is None else float(row[c]) for c in _STATE_FLOAT_COLUMNS]
         sketch = _sketch_cell(path, name, row.get("sketch"))
         out[name] = TensorRecord(
@@ -1029,4 +1045,6 @@ def _sketch_cell(path: Path, name: str, cell: Any) -> np.ndarray | None:
         return None
     if len(cell) > 4096:
         raise GoldenCorruptError(path, f"{name!r}: a sketch of {len(cell)} values is larger than trainguard writes")
+    if isinstance(cell, np.ndarray):
+        return cell
     return np.array([math.nan if v is None else v for v in cell], dtype=np.float64)
