@@ -36,8 +36,7 @@ class MetricDiff:
     abs_diff: float = math.nan
     rel_diff: float = math.nan
     allowed: float = math.nan  # atol + rtol * |golden| at first_step
-    max_abs: float = 0.0
-    max_rel: float = 0.0
+    max_abs: float = 0.0  # largest |new - golden| over the compared steps (relative size: rel_diff at first_step)
     missing_steps: list[int] = field(default_factory=list)
     added_steps: list[int] = field(default_factory=list)
     note: str = ""  # e.g. "diverged to NaN at step 12", "metric missing"
@@ -105,14 +104,11 @@ def _fill_metric_difference(diff: MetricDiff, common: np.ndarray, g: np.ndarray,
                 allowed += tol.atol
                 ok = absd <= allowed  # identical bits give 0 <= allowed: no need to OR in `same`
             diff.max_abs = float(largest)
-            rel = np.divide(absd, gabs, out=gabs)  # reuses gabs: 0/0 is NaN, skipped by fmax
-            diff.max_rel = float(np.fmax.reduce(rel)) if float(largest) > 0 else 0.0
         else:
             ok = same if exact else (same | within(g, n, tol))
             finite = np.isfinite(absd)
             if finite.any():
                 diff.max_abs = float(absd[finite].max())
-                diff.max_rel = float(_rel(absd[finite], g[finite]).max())
             nf = np.flatnonzero(~np.isfinite(n) & np.isfinite(g))
             if nf.size:
                 k = int(nf[0])
