@@ -101,6 +101,10 @@ def test_demo_runs_end_to_end(tmp_path):
     assert "6 (6 new)" in out and "6 (6 identical)" in out
     assert "demo finished as expected" in out
     assert "param_groups.0.momentum" in out and "0.9 -> 0.91" in out
+    # SGD's first momentum buffer is the gradient itself (PyTorch SGD docs), so step 0 matches
+    # and the update of step 1 is the first to differ; decoupled decay changes step 0's update.
+    assert "first divergence: step 1, stage update" in out
+    assert "first divergence: step 0, stage update" in out
     assert (tmp_path / "demo" / "golden" / "test_bakery.py" / "test_proofing_lbfgs" / "state.parquet").is_file()
 
 

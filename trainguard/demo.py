@@ -49,6 +49,7 @@ def batch(x, y, step, size=32):
 
 def train(model, opt, trajectory, steps=40):
     x, y = proofing_data()
+    trajectory.watch(model, opt)  # per-step trace: the report names the first step and stage that differ
     for step in range(steps):
         xb, yb = batch(x, y, step)
         opt.zero_grad()
