@@ -450,8 +450,11 @@ def test_prune_lists_and_deletes_goldens_no_test_uses(pytester: pytest.Pytester,
     (pytester.path / "test_broken.py").unlink()
 
     # a selection that collects nothing would call every golden unused: refused
-    assert main(["prune", "--delete", "--", "-k", "no_such_pantry_item"]) == 2
+    assert main(["prune", "--", "-k", "no_such_pantry_item"]) == 2
     assert "collected no tests" in capsys.readouterr().err
+    # --delete with any selection would delete the goldens of every unselected test: refused
+    assert main(["prune", "--delete", "--", "-k", "rye"]) == 2
+    assert "would delete the goldens of every test outside it" in capsys.readouterr().err
     assert golden_mod.exists(retired)
 
     assert main(["prune", "--delete"]) == 0

@@ -338,6 +338,28 @@ def _shown(path: Path) -> str:
         return str(path)
 
 
+_SELECTING_FLAGS = ("-k", "-m", "--deselect", "--lf", "--last-failed", "--ignore", "--ignore-glob", "--sw",
+                    "--stepwise")
+_VALUE_FLAGS = ("-p", "-c", "-o", "--rootdir", "--confcutdir", "--override-ini", "--config-file")
+
+
+def _selection_args(pytest_args: list[str]) -> list[str]:
+    """The pytest arguments that select a subset of the suite (flags, paths, node ids)."""
+    found, skip = [], False
+    for arg in pytest_args:
+        if skip:
+            skip = False
+            continue
+        flag = arg.split("=", 1)[0]
+        if flag in _VALUE_FLAGS:
+            skip = "=" not in arg
+        elif flag in _SELECTING_FLAGS or (flag.startswith("-k") or flag.startswith("-m")) and not flag.startswith("--"):
+            found.append(arg)
+        elif not arg.startswith("-"):
+            found.append(arg)
+    return found
+
+
 def cmd_prune(args: argparse.Namespace) -> int:
     from . import golden
     from .paths import golden_folder
@@ -349,6 +371,12 @@ def cmd_prune(args: argparse.Namespace) -> int:
     if misplaced:
         raise TrainguardError(f"{misplaced[0]} came after the pytest arguments, where it would go to pytest; "
                               f"put it first: trainguard prune {misplaced[0]} ... [PYTEST ARGS]")
+    narrowing = _selection_args(pytest_args)
+    if args.delete and narrowing:
+        raise TrainguardError(
+            f"prune --delete with a test selection ({' '.join(narrowing)}) would delete the goldens of every test "
+            "outside it; list with the selection (trainguard prune ...), or delete against the whole suite: "
+            "trainguard prune --delete")
     golden_dir = Path(args.golden_dir) if args.golden_dir else default_golden_dir()
     if golden_dir.is_symlink() and args.delete:
         raise TrainguardError(f"{golden_dir} is a symbolic link; prune --delete does not follow links. "
