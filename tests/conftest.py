@@ -2,7 +2,13 @@
 
 from __future__ import annotations
 
+import os
+
 import pytest
+
+# Module- and session-scoped fixtures (e.g. the bisect history) run before any function
+# fixture can clear CI, so clear it for the whole test process as well.
+os.environ.pop("CI", None)
 
 
 @pytest.fixture(autouse=True)
