@@ -211,7 +211,7 @@ def _run(folder: Path) -> int:
     _say("      decoupled weight decay. Four tests are untouched; two must fail with a report:  pytest")
     _write_suite(folder, momentum=0.91, decay="decoupled")
     third = _pytest(folder)
-    _say(_indent(_failures_section(third.stdout)))
+    _say(_indent(_tail(third.stdout, "FAILURES")))
     failed = _failed_tests(third.stdout)
     if third.returncode == 1 and failed == set(EXPECTED_FAILURES):
         _say("\ndemo finished as expected: the two behaviour changes were caught, the four unaffected tests passed.")
@@ -230,10 +230,3 @@ def _tail(output: str, section: str) -> str:
             return "\n".join(lines[i:])
     return output
 
-
-def _failures_section(output: str) -> str:
-    lines = output.splitlines()
-    for i, line in enumerate(lines):
-        if line.startswith("=") and " FAILURES " in line:
-            return "\n".join(lines[i:])
-    return output
