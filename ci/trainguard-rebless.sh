@@ -26,7 +26,7 @@ if [ -z "$reason" ]; then
 fi
 PYTHON="${PYTHON:-python}"
 if [ -n "$from" ]; then
-    "$PYTHON" -m trainguard.cli bless --from "$from" --reason "$reason" "${nodeids[@]}"
+    "$PYTHON" -m trainguard bless --from "$from" --reason "$reason" "${nodeids[@]}"
 else
     "$PYTHON" -m pytest --trainguard-bless --trainguard-reason "$reason" "${nodeids[@]}"
 fi

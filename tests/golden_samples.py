@@ -1,6 +1,6 @@
 """Invented runs and file-editing helpers shared by the golden storage tests.
 
-No torch: runs are built from `trainguard.record` directly, so the storage tests (and the
+No torch: runs are built from `trainguard.core.records` directly, so the storage tests (and the
 subprocesses of the crash tests) stay fast.
 """
 
@@ -15,8 +15,9 @@ from typing import Any
 
 import numpy as np
 
-from trainguard import golden
-from trainguard.record import MetricSeries, Run, TensorRecord, TraceEntry
+from trainguard.core import store as golden
+from trainguard.core import golden_format
+from trainguard.core.records import MetricSeries, Run, TensorRecord, TraceEntry
 
 
 def make_run(tag: str, steps: int = 12, with_trace: bool = True) -> Run:
@@ -116,7 +117,7 @@ def rewrite(path: Path, table: Any = None, metadata: dict[bytes, bytes] | None =
     merged.update(metadata or {})
     table = original if table is None else table
     if reseal:
-        merged[golden.KEY_DIGEST] = golden.content_digest(path.name, table, merged).encode()
+        merged[golden_format.KEY_DIGEST] = golden_format.content_digest(path.name, table, merged).encode()
     pq.write_table(table.replace_schema_metadata(merged), path)
 
 
@@ -127,8 +128,8 @@ def downgrade_to_format_1(folder: Path) -> None:
     for path in sorted(folder.glob("*.parquet")):
         table = pq.read_table(path)
         meta = {k: v for k, v in table.schema.metadata.items()
-                if k not in (golden.KEY_DIGEST, golden.KEY_RUN_ID, golden.KEY_WRITER)}
-        meta[golden.KEY_VERSION] = b"1"
+                if k not in (golden_format.KEY_DIGEST, golden_format.KEY_RUN_ID, golden_format.KEY_WRITER)}
+        meta[golden_format.KEY_VERSION] = b"1"
         pq.write_table(table.replace_schema_metadata(meta), path)
 
 

@@ -33,7 +33,7 @@ from pathlib import Path
 
 import pytest
 
-from trainguard.bisect import STEP_BAD, STEP_GOOD, STEP_SKIP, classify, failures_section, unfreeze
+from trainguard.tools.bisect import STEP_BAD, STEP_GOOD, STEP_SKIP, classify, failures_section, unfreeze
 
 pytestmark = pytest.mark.slow
 
@@ -117,7 +117,8 @@ def pytest_in(repo: Path, *args: str) -> subprocess.CompletedProcess[str]:
 @pytest.fixture(scope="module")
 def history(tmp_path_factory) -> dict[str, object]:
     """The 19-commit repository described above; returns its path and the sha of every numbered commit."""
-    from trainguard import golden
+    from trainguard.core import store as golden
+    from trainguard.core import records
 
     repo = tmp_path_factory.mktemp("ropeway") / "repo"
     repo.mkdir()
@@ -141,8 +142,8 @@ def history(tmp_path_factory) -> dict[str, object]:
     shas[7] = commit(repo, "Fix the trip loader", {"winch.py": winch()})
     # goldens only: a golden whose loss is 1% off, with another reason (tree goldens would blame this commit)
     run = golden.read_run(folder)
-    run.metrics["loss"] = golden.MetricSeries(run.metrics["loss"].steps, run.metrics["loss"].values * 1.01)
-    run.meta["reason"] = "tolerance review"
+    run.metrics["loss"] = records.MetricSeries(run.metrics["loss"].steps, run.metrics["loss"].values * 1.01)
+    run.meta = run.meta.with_(reason="tolerance review")  # GoldenMeta is immutable: replaced, not edited
     golden.write_run(folder, run)
     shas[8] = commit(repo, "Re-bless winch golden after tolerance review")
     shas[9] = commit(repo, "Tune winch momentum for smoother starts", {"winch.py": winch(momentum="0.93")})
@@ -175,7 +176,7 @@ def repo(history, tmp_path) -> Path:
 
 
 def bisect(repo: Path, tmp: Path, *args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "trainguard.cli", "bisect", *args], cwd=repo,
+    return subprocess.run([sys.executable, "-m", "trainguard.skins.cli", "bisect", *args], cwd=repo,
                           capture_output=True, text=True, env=env_for(tmp), timeout=300)
 
 
@@ -223,7 +224,7 @@ def test_bisect_names_the_planted_commit_and_restores_the_repo(history, repo, tm
 
 def test_ctrl_c_ends_the_bisect_and_restores_the_branch(history, repo, tmp_path):
     tmp = tmp_path / "tmp"
-    proc = subprocess.Popen([sys.executable, "-m", "trainguard.cli", "bisect", "--good", history["shas"][2],
+    proc = subprocess.Popen([sys.executable, "-m", "trainguard.skins.cli", "bisect", "--good", history["shas"][2],
                              "--bad", "main", NODEID], cwd=repo, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             text=True, env=env_for(tmp), start_new_session=True)
     try:

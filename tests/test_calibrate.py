@@ -21,23 +21,17 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from trainguard import golden, paths
-from trainguard.calibrate import (
-    RecordedRun,
-    RunSpec,
-    Setting,
-    analyse,
-    plan,
-    round_up,
-    thread_counts,
-    write_calibration,
-)
-from trainguard.cli import main
-from trainguard.comparison import CHANGED, CLOSE, compare
-from trainguard.guard import check
-from trainguard.record import MetricSeries, Run, TensorRecord
-from trainguard.settings import calibrated_policy
-from trainguard.tolerance import DEFAULT_ATOL, DEFAULT_RTOL, Policy, Tolerance
+from trainguard.core import paths
+from trainguard.core import store as golden
+from trainguard.tools.calibrate import plan, thread_counts, write_calibration
+from trainguard.tools.calibration import RecordedRun, RunSpec, Setting, analyse, round_up
+from trainguard.skins.cli import main
+from trainguard.core.comparison import compare
+from trainguard.core.verdicts import CHANGED, CLOSE
+from trainguard.core.guard import check
+from trainguard.core.records import MetricSeries, Run, TensorRecord
+from trainguard.core.settings import calibrated_policy
+from trainguard.core.tolerance import DEFAULT_ATOL, DEFAULT_RTOL, Policy, Tolerance
 
 # -- synthetic runs ----------------------------------------------------------------------------
 

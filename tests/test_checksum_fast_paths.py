@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 import torch
 
-from trainguard import checksum
+from trainguard.core import checksum
 
 
 def _hashlib_hex(t: torch.Tensor) -> str:
@@ -27,7 +27,7 @@ def _plain_summary(values: np.ndarray, k: int, chunk: int) -> tuple[tuple, np.nd
     flat = np.asarray(values, dtype=np.float64).reshape(-1)
     lo, hi, total, sumsq, finite = math.inf, -math.inf, 0.0, 0.0, 0
     acc = np.zeros(k) if k else None
-    bucket, sign = checksum._pattern(k) if k else (None, None)
+    bucket, sign = checksum.sketch_pattern(k) if k else (None, None)
     for start in range(0, flat.size, chunk):
         x = flat[start : start + chunk]
         mask = np.isfinite(x)
@@ -45,7 +45,7 @@ def _plain_summary(values: np.ndarray, k: int, chunk: int) -> tuple[tuple, np.nd
                 n = min(x.size - i, checksum.SKETCH_BLOCK - offset)
                 part = np.bincount(bucket[offset : offset + n], weights=x[i : i + n] * sign[offset : offset + n],
                                    minlength=k)
-                shift, block_sign = checksum._block_mix(block, k)
+                shift, block_sign = checksum.block_mix(block, k)
                 acc += block_sign * np.roll(part, shift)
                 i, pos = i + n, pos + n
     nonfinite = flat.size - finite
@@ -86,13 +86,13 @@ def test_small_and_large_paths_match_the_plain_construction(size, bad):
 def test_multi_block_sketch_with_small_chunks_matches_per_block_bincount(monkeypatch):
     monkeypatch.setattr(checksum, "SKETCH_BLOCK", 64)
     monkeypatch.setattr(checksum, "STATS_CHUNK_ELEMENTS", 1000)  # 15.6 blocks per chunk: unaligned chunks
-    checksum._pattern.cache_clear()
+    checksum.sketch_pattern.cache_clear()
     try:
         x = np.random.default_rng(5).standard_normal(5000)
         for k in (16, 256):
             _assert_bitwise(checksum.summarize(torch.from_numpy(x), k), _plain_summary(x, k, 1000))
     finally:
-        checksum._pattern.cache_clear()
+        checksum.sketch_pattern.cache_clear()
 
 
 def test_threaded_digest_equals_hashlib_and_keeps_statistics(monkeypatch):
@@ -122,7 +122,7 @@ def test_threaded_digest_error_reaches_the_caller(monkeypatch):
 def test_large_contiguous_tensor_is_hashed_in_place():
     # The in-place path hands hashlib the tensor's own storage: one buffer, no copy.
     t = torch.randn(1000)
-    pieces = list(checksum._tensor_bytes(t))
+    pieces = list(checksum.tensor_bytes(t))
     assert len(pieces) == 1 and pieces[0].nbytes == 4000
     assert np.shares_memory(np.asarray(pieces[0]), t.numpy())
 

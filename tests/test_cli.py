@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from trainguard import MetricSeries, Run, TensorRecord, write_run
-from trainguard.cli import main
+from trainguard.skins.cli import main
 
 
 def _golden(folder: Path, reason: str = "greenhouse baseline") -> Path:
@@ -85,7 +85,7 @@ def test_no_command_prints_help(capsys):
 
 
 def test_plugin_import_is_cheap():
-    code = ("import sys, trainguard, trainguard.plugin; "
+    code = ("import sys, trainguard, trainguard.skins.plugin; "
             "print(sorted(m for m in ('torch', 'numpy', 'pyarrow', 'pandas', 'matplotlib', 'deepdiff') "
             "if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
@@ -94,7 +94,7 @@ def test_plugin_import_is_cheap():
 
 @pytest.mark.slow
 def test_demo_runs_end_to_end(tmp_path):
-    proc = subprocess.run([sys.executable, "-m", "trainguard.cli", "demo", "--keep", str(tmp_path / "demo")],
+    proc = subprocess.run([sys.executable, "-m", "trainguard.skins.cli", "demo", "--keep", str(tmp_path / "demo")],
                           capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     out = proc.stdout
@@ -110,7 +110,7 @@ def test_demo_runs_end_to_end(tmp_path):
 
 def test_public_api_names_survive_submodule_imports():
     """`trainguard.compare` and `trainguard.fingerprint` are functions, whatever was imported before."""
-    code = ("import trainguard.comparison, trainguard.environment, trainguard.guard, trainguard\n"
+    code = ("import trainguard.core.comparison, trainguard.core.environment, trainguard.core.guard, trainguard\n"
             "from trainguard import compare, fingerprint, check, bless\n"
             "print(all(callable(f) and not isinstance(f, type(trainguard)) for f in (compare, fingerprint, check, bless)))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout

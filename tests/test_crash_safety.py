@@ -16,8 +16,9 @@ from pathlib import Path
 import pytest
 
 from golden_samples import crash_runs, file_tag, which_run, write_forever
-from trainguard import golden
-from trainguard.errors import TrainguardError
+from trainguard.core import store as golden
+from trainguard.core import atomic
+from trainguard.core.errors import TrainguardError
 
 pytestmark = pytest.mark.skipif(sys.platform == "win32", reason="SIGKILL and flock are POSIX")
 
@@ -60,8 +61,8 @@ def test_sigkill_at_random_points_leaves_every_golden_whole(ctx, tmp_path):
         _kill(proc)
         whole = True
         for folder in folders:
-            pending_commits += (folder / golden.COMMIT_FILE).exists()
-            leftovers += len(list(folder.glob(golden.TEMP_PREFIX + "*")))
+            pending_commits += (folder / atomic.COMMIT_FILE).exists()
+            leftovers += len(list(folder.glob(atomic.TEMP_PREFIX + "*")))
             try:
                 name = which_run(golden.read_run(folder), RUNS)
             except TrainguardError as exc:  # pragma: no cover - what this test guards against
@@ -113,7 +114,7 @@ def test_two_concurrent_writers_and_a_reader_never_see_a_mixed_set(ctx, tmp_path
         name = which_run(golden.read_run(folder), RUNS)
         if name is None:
             on_disk_mixed += 1
-        elif not (folder / golden.COMMIT_FILE).exists():  # (killed mid-switch: readers roll forward, checked above)
+        elif not (folder / atomic.COMMIT_FILE).exists():  # (killed mid-switch: readers roll forward, checked above)
             files = sorted(folder.glob("*.parquet"))
             on_disk_mixed += {file_tag(p) for p in files} != {f"run {name}"} or len(files) != {"A": 3, "B": 2}[name]
     print(f"\nconcurrency: 2 writers x {FOLDERS} folders for 8 s, {reads} reads by a third process: "

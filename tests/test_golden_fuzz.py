@@ -23,8 +23,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from golden_samples import make_run, same_run
-from trainguard import golden
-from trainguard.errors import TrainguardError
+from trainguard.core import store as golden
+from trainguard.core import golden_format
+from trainguard.core.errors import TrainguardError
+from trainguard.core.meta import GoldenMeta
 
 EXAMPLES = 500
 FUZZ = settings(max_examples=EXAMPLES, deadline=None, derandomize=True, database=None,
@@ -166,20 +168,20 @@ def test_fuzz_metadata_rewrites_with_random_and_deeply_nested_json(pristine, tmp
             (folder / n).write_bytes(original[n])
         table = tables[name]
         md = dict(table.schema.metadata)
-        md[golden.KEY_META] = meta
-        md[golden.KEY_VERSION] = version
+        md[golden_format.KEY_META] = meta
+        md[golden_format.KEY_VERSION] = version
         if run_id == b"keep":
             pass
         elif run_id is None:
-            md.pop(golden.KEY_RUN_ID, None)
+            md.pop(golden_format.KEY_RUN_ID, None)
         else:
-            md[golden.KEY_RUN_ID] = run_id
+            md[golden_format.KEY_RUN_ID] = run_id
         if reseal:
-            md[golden.KEY_DIGEST] = golden.content_digest(name, table, md).encode()
+            md[golden_format.KEY_DIGEST] = golden_format.content_digest(name, table, md).encode()
         pq.write_table(table.replace_schema_metadata(md), folder / name)
         run = tally.read(folder)
         if run is not None:
-            assert isinstance(run.meta, dict)
+            assert isinstance(run.meta, GoldenMeta)
 
     case()
     tally.report()
@@ -191,7 +193,7 @@ _types = st.sampled_from([pa.int64(), pa.int32(), pa.float64(), pa.float32(), pa
                           pa.bool_(), pa.null(), pa.list_(pa.int64()), pa.list_(pa.float64()), pa.list_(pa.string()),
                           pa.large_list(pa.float64()), pa.timestamp("ms"), pa.dictionary(pa.int32(), pa.string()),
                           pa.struct([("x", pa.float64())]), pa.list_(pa.list_(pa.float64())), pa.decimal128(10, 2)])
-_names = st.sampled_from(sorted({f.name for n in FILES for f in golden._schema_of(n)}) + ["extra", ""])
+_names = st.sampled_from(sorted({f.name for n in FILES for f in golden_format.schema_of(n)}) + ["extra", ""])
 
 
 def _random_array(data, arrow_type, rows: int):
@@ -223,7 +225,7 @@ def test_fuzz_tables_of_random_column_types(pristine, tmp_path):
         for n in FILES:
             (folder / n).write_bytes(original[n])
         rows = data.draw(st.integers(0, 6))
-        expected = golden._schema_of(name)
+        expected = golden_format.schema_of(name)
         columns = {}
         for field in expected:  # start from the right schema, then change some columns
             choice = data.draw(st.integers(0, 3))
@@ -240,7 +242,7 @@ def test_fuzz_tables_of_random_column_types(pristine, tmp_path):
             return
         try:
             if reseal:
-                md[golden.KEY_DIGEST] = golden.content_digest(name, table, md).encode()
+                md[golden_format.KEY_DIGEST] = golden_format.content_digest(name, table, md).encode()
         except TypeError:
             pass  # a type the digest has no canonical form for: keep the old digest
         try:
@@ -282,7 +284,7 @@ def test_fuzz_cell_values_behind_a_valid_digest(pristine, tmp_path):
                 array = pa.array(cells, field.type)
             table = table.set_column(table.schema.get_field_index(field.name), field.name, array)
         md = dict(tables[name].schema.metadata)
-        md[golden.KEY_DIGEST] = golden.content_digest(name, table, md).encode()
+        md[golden_format.KEY_DIGEST] = golden_format.content_digest(name, table, md).encode()
         pq.write_table(table.replace_schema_metadata(md), folder / name)
         tally.read(folder)
 

@@ -14,9 +14,12 @@ import pyarrow.parquet as pq
 import pytest
 
 from golden_samples import downgrade_to_format_1, file_tag, make_run, rewrite, same_run, snapshot
-from trainguard import __version__, golden
-from trainguard.cli import main
-from trainguard.errors import GoldenCorruptError, GoldenError, GoldenVersionError, TrainguardError
+from trainguard import __version__
+from trainguard.core import atomic, golden_format
+from trainguard.core import store as golden
+from trainguard.core.errors import GoldenCorruptError, GoldenError, GoldenVersionError, TrainguardError
+from trainguard.core.records import TensorRecord
+from trainguard.skins.cli import main
 
 A, B = make_run("A"), make_run("B")
 
@@ -210,7 +213,7 @@ def test_upgrade_of_a_folder_is_atomic_when_interrupted(tmp_path, monkeypatch):
     def crash(*args, **kwargs):
         raise OSError("disk full (simulated)")
 
-    monkeypatch.setattr(golden, "_commit", crash)
+    monkeypatch.setattr(atomic.FileSet, "_commit", crash)
     with pytest.raises(OSError):
         golden.upgrade_goldens(root)
     assert snapshot(root) == before  # the temp files of the interrupted upgrade were removed
@@ -249,16 +252,17 @@ def _interrupted_after_commit(folder: Path, run, drop_trace: bool = False) -> No
     """Do what write_run does up to and including its commit record, then stop (as if killed)."""
     import uuid
 
-    meta = json.dumps(run.meta, sort_keys=True).encode()
+    meta = json.dumps(run.meta.to_json(), sort_keys=True).encode()
     run_id = uuid.uuid4().hex
-    tables = {"metrics.parquet": golden._metrics_table(run), "state.parquet": golden._state_table(run)}
+    tables = {"metrics.parquet": golden_format.metrics_table(run), "state.parquet": golden_format.state_table(run)}
     if not drop_trace:
-        tables["trace.parquet"] = golden._trace_table(run)
-    temps = {k: golden._write_temp(golden._sealed(k, t, meta, run_id), folder, k) for k, t in tables.items()}
+        tables["trace.parquet"] = golden_format.trace_table(run)
+    temps = {k: atomic.write_temp(folder, k, golden_format.parquet_writer(k, golden_format.seal(k, t, meta, run_id)))
+             for k, t in tables.items()}
     os.replace(temps.pop("metrics.parquet"), folder / "metrics.parquet")  # killed after the first rename
     record = {"run_id": run_id, "replace": {k: p.name for k, p in temps.items()} | {"metrics.parquet": ".tmp-metrics.parquet.1.gone"},
               "remove": ["trace.parquet"] if drop_trace else []}
-    (folder / golden.COMMIT_FILE).write_text(json.dumps(record))
+    (folder / atomic.COMMIT_FILE).write_text(json.dumps(record))
 
 
 @pytest.mark.parametrize("drop_trace", [False, True])
@@ -278,10 +282,10 @@ def test_a_write_killed_after_its_commit_reads_whole_and_is_completed_by_the_nex
     b'{"run_id": "x", "replace": {}, "remove": ["../../important"]}', b"[" * 100000,
 ])
 def test_a_hostile_commit_record_is_refused_naming_it(folder, record):
-    (folder / golden.COMMIT_FILE).write_bytes(record)
-    _corrupt(folder, folder / golden.COMMIT_FILE, "")
+    (folder / atomic.COMMIT_FILE).write_bytes(record)
+    _corrupt(folder, folder / atomic.COMMIT_FILE, "")
     golden.write_run(folder, B)  # a bless replaces it without following it
-    assert same_run(golden.read_run(folder), B) and not (folder / golden.COMMIT_FILE).exists()
+    assert same_run(golden.read_run(folder), B) and not (folder / atomic.COMMIT_FILE).exists()
 
 
 # -- symlinks, folders, sizes ----------------------------------------------------------------------
@@ -339,20 +343,20 @@ def test_files_over_the_size_limit_are_refused_before_loading(folder, monkeypatc
 
 
 def test_ini_value_of_the_size_limit():
-    from trainguard.errors import UsageError
+    from trainguard.core.errors import UsageError
 
-    assert golden.max_bytes_from_ini("") == 512 * 1024 * 1024
-    assert golden.max_bytes_from_ini("2") == 2 * 1024 * 1024
-    assert golden.max_bytes_from_ini("0.5") == 512 * 1024
+    assert golden_format.max_bytes_from_ini("") == 512 * 1024 * 1024
+    assert golden_format.max_bytes_from_ini("2") == 2 * 1024 * 1024
+    assert golden_format.max_bytes_from_ini("0.5") == 512 * 1024
     for bad in ("0", "-1", "nan", "inf", "lots"):
         with pytest.raises(UsageError, match="trainguard_max_file_mib"):
-            golden.max_bytes_from_ini(bad)
+            golden_format.max_bytes_from_ini(bad)
 
 
 def test_declared_uncompressed_sizes_and_value_counts_are_limited(tmp_path):
     run = make_run("A", with_trace=False)
     zeros = np.zeros(60_000)
-    run.tensors["oven.bias"] = golden.TensorRecord("oven.bias", "buffer", "float64", (60_000,), "0" * 64,
+    run.tensors["oven.bias"] = TensorRecord("oven.bias", "buffer", "float64", (60_000,), "0" * 64,
                                                    0.0, 0.0, 0.0, 0.0, 0, values=zeros)
     golden.write_run(tmp_path / "g", run)
     path = tmp_path / "g" / "state.parquet"

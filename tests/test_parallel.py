@@ -25,10 +25,12 @@ import pytest
 # Imported here, not inside the tests: pytester restores sys.modules after each test, and
 # NumPy cannot be imported a second time in one process.
 import trainguard
-from trainguard import cli, golden, paths
-from trainguard.comparison import compare
-from trainguard.report_files import write_report
-from trainguard.tolerance import Policy
+from trainguard.core import paths
+from trainguard.core import store as golden
+from trainguard.skins import cli
+from trainguard.core.comparison import compare
+from trainguard.core.report_files import write_report
+from trainguard.core.tolerance import Policy
 
 pytestmark = pytest.mark.slow
 

@@ -1,4 +1,4 @@
-"""Unit tests of `trainguard.paths`: node id -> golden folder.
+"""Unit tests of `trainguard.core.paths`: node id -> golden folder.
 
 Properties checked: confined (never outside the golden dir), injective, stable, and every
 component valid on common file systems (no separators, NUL or control characters, not
@@ -18,7 +18,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from trainguard.paths import MAX_COMPONENT, golden_folder, golden_relpath, safe_component, split_nodeid
+from trainguard.core.paths import MAX_COMPONENT, golden_folder, golden_relpath, safe_component, split_nodeid
 
 #: Device names Windows reserves with or without an extension (Microsoft docs, "Naming Files,
 #: Paths, and Namespaces"): CON, PRN, AUX, NUL, COM0-9, LPT0-9.
@@ -181,7 +181,7 @@ def test_mapping_is_stable_across_processes(tmp_path):
     ids = ["tests/test_bakery.py::test_oven[rye]", "test_a.py::test_x[" + "\u00fc" * 300 + "]", "test_a.py::CON"]
     here = [golden_relpath(i).as_posix() for i in ids]
     code = (
-        "import sys, json; from trainguard.paths import golden_relpath; "
+        "import sys, json; from trainguard.core.paths import golden_relpath; "
         "print(json.dumps([golden_relpath(i).as_posix() for i in json.loads(sys.argv[1])]))"
     )
     import json

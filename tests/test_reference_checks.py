@@ -21,10 +21,10 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
 import trainguard
-from trainguard import checksum
-from trainguard.capture import Trajectory
-from trainguard.record import MetricSeries, Run
-from trainguard.tolerance import Tolerance, within
+from trainguard.core import checksum
+from trainguard.core.capture import Trajectory
+from trainguard.core.records import MetricSeries, Run
+from trainguard.core.tolerance import Tolerance, within
 
 # -- SHA-256 -------------------------------------------------------------------------
 

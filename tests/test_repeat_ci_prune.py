@@ -270,7 +270,7 @@ def test_ci_requires_a_bless_reason_and_says_why_a_golden_is_missing(pytester: p
     ("0", False), ("", False), ("  ", False), (None, False),
 ])
 def test_ci_variable_values(value: str | None, strict: bool) -> None:
-    from trainguard.plugin import ci_enabled
+    from trainguard.core.project import ci_enabled
 
     assert ci_enabled({} if value is None else {"CI": value}) is strict
 
@@ -409,8 +409,8 @@ def test_shelf_labels():
 def test_prune_lists_and_deletes_goldens_no_test_uses(pytester: pytest.Pytester, monkeypatch: pytest.MonkeyPatch,
                                                       capsys: pytest.CaptureFixture[str],
                                                       tmp_path_factory: pytest.TempPathFactory) -> None:
-    from trainguard import golden as golden_mod
-    from trainguard.cli import main
+    from trainguard.core import store as golden_mod
+    from trainguard.skins.cli import main
 
     pytester.makeini("[pytest]\n")
     pytester.makepyfile(test_pantry=PANTRY)

@@ -29,9 +29,10 @@ from urllib.parse import unquote
 import pyarrow.parquet as pq
 import pytest
 
-from trainguard import golden as golden_store
-from trainguard.cli import main
-from trainguard.paths import golden_folder
+from trainguard.core import store as golden_store
+from trainguard.core import golden_format
+from trainguard.skins.cli import main
+from trainguard.core.paths import golden_folder
 
 pytestmark = pytest.mark.slow
 
@@ -120,7 +121,7 @@ def set_fingerprint_torch(folder: Path, version: str) -> None:
         metadata[b"trainguard.meta"] = json.dumps(meta, sort_keys=True).encode()
         assert metadata[b"trainguard.format_version"] == b"2"
         # reseal: recompute the content digest, as a deliberate metadata edit must
-        metadata[golden_store.KEY_DIGEST] = golden_store.content_digest(path.name, table, metadata).encode()
+        metadata[golden_format.KEY_DIGEST] = golden_format.content_digest(path.name, table, metadata).encode()
         pq.write_table(table.replace_schema_metadata(metadata), path)
 
 

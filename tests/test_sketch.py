@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import torch
 
-from trainguard import checksum
+from trainguard.core import checksum
 
 MASK = (1 << 64) - 1
 
@@ -26,13 +26,13 @@ def test_splitmix64_matches_the_published_algorithm():
     # independent pure-Python implementation above).
     assert splitmix64_reference(0) == 0xE220A8397B1DCDAF
     xs = np.array([0, 1, 2, 12345, 2**63, MASK], dtype=np.uint64)
-    got = checksum._splitmix64(xs)
+    got = checksum.splitmix64(xs)
     assert [int(v) for v in got] == [splitmix64_reference(int(x)) for x in xs]
 
 
 def reference_sketch(values: np.ndarray, k: int) -> np.ndarray:
     """The documented construction, element by element (slow, obviously correct)."""
-    seed = int(checksum._SEED)
+    seed = int(checksum.SKETCH_SEED)
     out = np.zeros(k)
     for i, x in enumerate(values.astype(np.float64)):
         block, offset = divmod(i, checksum.SKETCH_BLOCK)
@@ -48,7 +48,7 @@ def test_sketch_matches_reference_construction_across_chunks(monkeypatch):
     rng = np.random.default_rng(3)
     monkeypatch.setattr(checksum, "SKETCH_BLOCK", 64)  # many blocks in a small array
     monkeypatch.setattr(checksum, "STATS_CHUNK_ELEMENTS", 37)  # chunks that straddle blocks
-    checksum._pattern.cache_clear()
+    checksum.sketch_pattern.cache_clear()
     try:
         x = rng.standard_normal(500)
         x[7] = np.nan
@@ -56,7 +56,7 @@ def test_sketch_matches_reference_construction_across_chunks(monkeypatch):
         np.testing.assert_allclose(checksum.sketch(torch.from_numpy(x), 16), reference_sketch(x, 16),
                                    rtol=1e-12, atol=1e-12)
     finally:
-        checksum._pattern.cache_clear()
+        checksum.sketch_pattern.cache_clear()
 
 
 def test_single_element_difference_is_measured_exactly():
@@ -96,9 +96,10 @@ def test_estimator_error_bound_holds_in_the_stated_fraction_of_trials():
 
 
 def test_large_state_entry_tolerance_uses_sketch():
-    from trainguard.capture import Trajectory
-    from trainguard.comparison import CHANGED, CLOSE, compare
-    from trainguard.tolerance import Policy
+    from trainguard.core.capture import Trajectory
+    from trainguard.core.comparison import compare
+    from trainguard.core.verdicts import CHANGED, CLOSE
+    from trainguard.core.tolerance import Policy
 
     def run(weights):
         t = Trajectory(max_values=10)

@@ -21,13 +21,13 @@ import pyarrow.parquet as pq
 import pytest
 import torch
 
-from trainguard.attribution import MAX_NAMES, compare_traces
-from trainguard.capture import Trajectory
-from trainguard.comparison import CHANGED, CLOSE, IDENTICAL
-from trainguard.errors import UsageError
-from trainguard.record import TraceEntry
-from trainguard.tolerance import Tolerance
-from trainguard.trace import Tracer
+from trainguard.core.attribution import MAX_NAMES, compare_traces
+from trainguard.core.capture import Trajectory
+from trainguard.core.verdicts import CHANGED, CLOSE, IDENTICAL
+from trainguard.core.errors import UsageError
+from trainguard.core.records import TraceEntry
+from trainguard.core.tolerance import Tolerance
+from trainguard.core.trace import Tracer
 
 TOL = Tolerance(rtol=1e-5, atol=1e-8)
 
@@ -242,7 +242,7 @@ HOOK_TESTS = '''
 import pytest
 import torch
 
-from trainguard.trace import Tracer
+from trainguard.core.trace import Tracer
 
 ORIGINAL_BACKWARD = torch.Tensor.backward
 KEPT = {}
@@ -503,8 +503,8 @@ def test_reordered_batch_is_a_data_change_not_noise():
     """A shuffled batch keeps min, max, mean and L2 norm; the position-hashed sketch still sees it."""
     import torch
 
-    from trainguard import checksum
-    from trainguard.record import TraceEntry
+    from trainguard.core import checksum
+    from trainguard.core.records import TraceEntry
 
     x = torch.arange(32, dtype=torch.float32).reshape(8, 4) / 7.0  # invented sensor readings
     flipped = x.flip(0)

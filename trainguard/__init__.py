@@ -2,7 +2,10 @@
 
 The public API is listed in `__all__`. Names are loaded on first use, so that importing
 the package (which pytest does to load the plugin) imports neither torch, NumPy nor
-pyarrow.
+pyarrow. The package has three layers, each importing only from below (DEVELOPERS.md):
+`trainguard.core` (records, store, comparison, reports as data), `trainguard.tools`
+(workflows that run pytest in subprocesses) and `trainguard.skins` (the pytest plugin
+and the CLI).
 """
 
 from __future__ import annotations
@@ -10,32 +13,37 @@ from __future__ import annotations
 from importlib import import_module
 from typing import Any
 
-__version__ = "0.1.0"
+from .core.version import __version__
 
 _EXPORTS = {
-    "Trajectory": "capture",
-    "Run": "record",
-    "MetricSeries": "record",
-    "TensorRecord": "record",
-    "read_run": "golden",
-    "write_run": "golden",
-    "FORMAT_VERSION": "golden",
-    "compare": "comparison",
-    "Comparison": "comparison",
-    "Policy": "tolerance",
-    "Tolerance": "tolerance",
-    "fingerprint": "environment",
-    "golden_folder": "paths",
-    "check": "guard",
-    "bless": "guard",
-    "GuardResult": "guard",
-    "describe_comparison": "report",
-    "TrainguardError": "errors",
-    "UsageError": "errors",
-    "GoldenError": "errors",
-    "GoldenMissingError": "errors",
-    "GoldenCorruptError": "errors",
-    "GoldenVersionError": "errors",
+    "Trajectory": "core.capture",
+    "Run": "core.records",
+    "MetricSeries": "core.records",
+    "TensorRecord": "core.records",
+    "TraceEntry": "core.records",
+    "Stats": "core.records",
+    "GoldenMeta": "core.meta",
+    "GoldenStore": "core.store",
+    "read_run": "core.store",
+    "write_run": "core.store",
+    "FORMAT_VERSION": "core.golden_format",
+    "compare": "core.comparison",
+    "Comparison": "core.comparison",
+    "Policy": "core.tolerance",
+    "Tolerance": "core.tolerance",
+    "Verdict": "core.verdicts",
+    "fingerprint": "core.environment",
+    "golden_folder": "core.paths",
+    "check": "core.guard",
+    "bless": "core.guard",
+    "GuardResult": "core.guard",
+    "describe_comparison": "core.report",
+    "TrainguardError": "core.errors",
+    "UsageError": "core.errors",
+    "GoldenError": "core.errors",
+    "GoldenMissingError": "core.errors",
+    "GoldenCorruptError": "core.errors",
+    "GoldenVersionError": "core.errors",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

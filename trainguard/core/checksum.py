@@ -13,10 +13,11 @@ import hashlib
 import math
 import sys
 import threading
-from dataclasses import dataclass
 from typing import Any, Iterator
 
 import numpy as np
+
+from .records import Stats
 
 #: Bytes copied at a time when a tensor's bytes cannot be hashed in place (a non-contiguous
 #: or non-CPU tensor, a big-endian host or array); contiguous CPU data is hashed in place.
@@ -29,17 +30,6 @@ THREAD_MIN_BYTES = 4 * 1024 * 1024
 #: Tensors up to this many elements take the short path (one float64 copy, no buffers):
 #: the per-step trace records many small tensors, where fixed costs dominate.
 SMALL_ELEMENTS = 1 << 16
-
-
-@dataclass(frozen=True)
-class Stats:
-    """float64 summary of a tensor's finite values, plus how many were not finite."""
-
-    min: float
-    max: float
-    mean: float
-    l2: float
-    nonfinite: int
 
 
 def sha256_hex(data: Any) -> str:
@@ -78,21 +68,22 @@ def describe(data: Any, sketch_size: int = 0) -> tuple[str, Stats, np.ndarray | 
     return box["digest"], st, sk
 
 
-def _is_torch_tensor(obj: Any) -> bool:
+def is_tensor(obj: Any) -> bool:
+    """A torch tensor, checked without importing torch (a process that never imported it has none)."""
     torch = sys.modules.get("torch")
     return torch is not None and isinstance(obj, torch.Tensor)
 
 
 def _nbytes(data: Any) -> int:
-    if _is_torch_tensor(data):
+    if is_tensor(data):
         return int(data.numel()) * int(data.element_size())
     return int(getattr(data, "nbytes", 0))
 
 
 def _le_bytes(data: Any) -> Iterator[memoryview]:
     """The little-endian bytes of `data` in row-major order, without a full copy where possible."""
-    if _is_torch_tensor(data):
-        yield from _tensor_bytes(data)
+    if is_tensor(data):
+        yield from tensor_bytes(data)
         return
     array = np.asarray(data)
     if array.size == 0:
@@ -108,7 +99,7 @@ def _le_bytes(data: Any) -> Iterator[memoryview]:
         yield memoryview(flat[start : start + step].astype(little).view(np.uint8))
 
 
-def _tensor_bytes(tensor: Any) -> Iterator[memoryview]:
+def tensor_bytes(tensor: Any) -> Iterator[memoryview]:
     import torch
 
     tensor = tensor.detach()
@@ -203,7 +194,7 @@ def _float64_chunks(data: Any) -> Iterator[tuple[int, np.ndarray, tuple[float, f
     """(start position, flat float64 chunk, (min, max) or None) triples; complex values as
     (real, imaginary) pairs. A chunk may live in a buffer that the next chunk overwrites.
     The bounds, when given, are the chunk's min and max (NaN if it holds a NaN)."""
-    if _is_torch_tensor(data):
+    if is_tensor(data):
         import torch
 
         tensor = data.detach()
@@ -272,11 +263,11 @@ SKETCH_BLOCK = 1 << 16
 #: Sketch sizes: state entries too large to keep their values, and every trace entry.
 STATE_SKETCH = 256
 TRACE_SKETCH = 16
-_SEED = np.uint64(0x7472_6169_6E67_7561)  # "trainguar" in ASCII, an arbitrary fixed seed
+SKETCH_SEED = np.uint64(0x7472_6169_6E67_7561)  # "trainguar" in ASCII, an arbitrary fixed seed
 _M1, _M2, _GOLDEN = np.uint64(0xBF58476D1CE4E5B9), np.uint64(0x94D049BB133111EB), np.uint64(0x9E3779B97F4A7C15)
 
 
-def _splitmix64(x: np.ndarray) -> np.ndarray:
+def splitmix64(x: np.ndarray) -> np.ndarray:
     with np.errstate(over="ignore"):
         z = x + _GOLDEN
         z = (z ^ (z >> np.uint64(30))) * _M1
@@ -285,23 +276,23 @@ def _splitmix64(x: np.ndarray) -> np.ndarray:
 
 
 @functools.lru_cache(maxsize=8)
-def _pattern(k: int) -> tuple[np.ndarray, np.ndarray]:
-    h = _splitmix64(np.arange(SKETCH_BLOCK, dtype=np.uint64) ^ _SEED)
+def sketch_pattern(k: int) -> tuple[np.ndarray, np.ndarray]:
+    h = splitmix64(np.arange(SKETCH_BLOCK, dtype=np.uint64) ^ SKETCH_SEED)
     bucket = ((h >> np.uint64(32)) % np.uint64(k)).astype(np.intp)
     sign = np.where((h & np.uint64(1)) == 1, 1.0, -1.0)
     return bucket, sign
 
 
 @functools.lru_cache(maxsize=4096)
-def _block_mix(block: int, k: int) -> tuple[int, float]:
-    h = int(_splitmix64(np.array([block], dtype=np.uint64) ^ ~_SEED)[0])
+def block_mix(block: int, k: int) -> tuple[int, float]:
+    h = int(splitmix64(np.array([block], dtype=np.uint64) ^ ~SKETCH_SEED)[0])
     return (h >> 32) % k, (1.0 if h & 1 else -1.0)
 
 
 @functools.lru_cache(maxsize=4)
 def _tiled(k: int, block_size: int, blocks: int) -> tuple[np.ndarray, np.ndarray]:
     """Bucket index (block * k + bucket) and sign of every position in `blocks` whole blocks."""
-    bucket, sign = _pattern(k)
+    bucket, sign = sketch_pattern(k)
     index = (np.arange(blocks, dtype=np.intp)[:, None] * k + bucket[None, :]).reshape(-1)
     return index, np.tile(sign, blocks)
 
@@ -309,8 +300,8 @@ def _tiled(k: int, block_size: int, blocks: int) -> tuple[np.ndarray, np.ndarray
 @functools.lru_cache(maxsize=8)
 def _folded(k: int, block_size: int, block: int) -> tuple[np.ndarray, np.ndarray]:
     """Bucket and sign of every position of one block, with the block's shift and sign applied."""
-    bucket, sign = _pattern(k)
-    shift, block_sign = _block_mix(block, k)
+    bucket, sign = sketch_pattern(k)
+    shift, block_sign = block_mix(block, k)
     return (bucket + shift) % k, sign * block_sign
 
 
@@ -327,7 +318,7 @@ def _sketch_update(acc: np.ndarray, start: int, x: np.ndarray, scratch: list[np.
     if n == 0:
         return
     block_size = SKETCH_BLOCK
-    bucket, sign = _pattern(k)
+    bucket, sign = sketch_pattern(k)
     first, offset = divmod(start, block_size)
     blocks = -(-(offset + n) // block_size)
     if blocks == 1:
@@ -355,7 +346,7 @@ def _sketch_update(acc: np.ndarray, start: int, x: np.ndarray, scratch: list[np.
         weights = x * signs
     parts = np.bincount(index, weights=weights, minlength=blocks * k).reshape(blocks, k)
     for j in range(blocks):
-        shift, block_sign = _block_mix(first + j, k)
+        shift, block_sign = block_mix(first + j, k)
         acc += block_sign * np.roll(parts[j], shift)
 
 
@@ -372,7 +363,7 @@ def sketch_distance(a: np.ndarray, b: np.ndarray) -> float:
 
 def values_float64(data: Any) -> np.ndarray:
     """Flat float64 copy of the values, the form a golden stores them in."""
-    if _is_torch_tensor(data):
+    if is_tensor(data):
         import torch
 
         tensor = data.detach()

@@ -5,7 +5,7 @@ first: the golden dir of the good revision (`git archive GOOD -- <golden dir>`) 
 work tree is copied into a temporary folder outside the work tree, and every step runs
 pytest with `--trainguard-golden-dir` pointing there. `git bisect run` then drives
 
-    python -m trainguard.bisect step ...
+    python -m trainguard.tools.bisect step ...
 
 at each commit it picks; the step exits 0 (every selected guarded test identical or within
 tolerance), 1 (a guarded test changed) or 125 (untestable: setup failed, pytest could not
@@ -36,7 +36,12 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Sequence
 
-from .errors import TrainguardError
+from ..core.errors import TrainguardError
+from ..core.project import default_golden_dir
+from ..core.store import GoldenStore
+from ..core.text import table
+from ..core.verdicts import CHANGED, PASSING
+from . import pytest_runs
 
 #: Exit statuses of a step, as `git bisect run` reads them.
 STEP_GOOD = 0
@@ -46,11 +51,7 @@ STEP_SKIP = 125
 STEP_ABORT = 128
 
 VERDICTS = {STEP_GOOD: "good", STEP_BAD: "bad", STEP_SKIP: "untestable"}
-PASSING = ("identical", "within tolerance")
-CHANGED = "changed"
-#: pytest exit codes that mean "could not test": interrupted, internal error, usage error, no tests collected.
-PYTEST_UNTESTABLE = {2: "interrupted or collection errors", 3: "internal error", 4: "usage error, or the tests could not be collected",
-                     5: "no tests collected"}
+PYTEST_UNTESTABLE = pytest_runs.UNTESTABLE
 
 STEPS_DIR = "steps"
 REFERENCE_DIR = "reference"
@@ -129,27 +130,30 @@ def _dirty(repo: Path) -> list[str]:
 # -- the frozen reference ----------------------------------------------------------------
 
 
-def _extract_tar(data: bytes, dest: Path) -> int:
-    """Extract regular files and folders of a `git archive` tar into `dest`; nothing else, nothing outside."""
+def _tar_files(data: bytes) -> list[tuple[str, bytes]]:
+    """The regular files of a `git archive` tar, by path (links, devices and the like are left out)."""
     import io
 
-    count = 0
-    root = dest.resolve()
+    files = []
     with tarfile.open(fileobj=io.BytesIO(data), mode="r:") as tar:
         for member in tar.getmembers():
-            parts = Path(member.name).parts
-            if not parts or member.name.startswith("/") or ".." in parts:
-                continue
-            target = root.joinpath(*parts)
-            if member.isdir():
-                target.mkdir(parents=True, exist_ok=True)
-            elif member.isfile():
-                target.parent.mkdir(parents=True, exist_ok=True)
+            if member.isfile():
                 source = tar.extractfile(member)
                 if source is not None:
-                    target.write_bytes(source.read())
-                    count += 1
-    return count
+                    files.append((member.name, source.read()))
+    return files
+
+
+def _tree_files(source: Path, prefix: str) -> list[tuple[str, bytes]]:
+    """The regular files below `source` (links not followed), by path under `prefix`."""
+    files = []
+    for dirpath, dirnames, filenames in os.walk(source, followlinks=False):
+        dirnames.sort()
+        for name in sorted(filenames):
+            path = Path(dirpath) / name
+            if path.is_file() and not path.is_symlink():
+                files.append((f"{prefix}/{path.relative_to(source).as_posix()}", path.read_bytes()))
+    return files
 
 
 def freeze_reference(repo: Path, golden_rel: str, dest: Path, good_sha: str | None) -> Path:
@@ -160,7 +164,8 @@ def freeze_reference(repo: Path, golden_rel: str, dest: Path, good_sha: str | No
         if not source.is_dir():
             raise TrainguardError(f"the work tree has no golden dir {golden_rel} (looked in {source}); "
                                   "bless the tests first, or give the golden folder with --golden-dir DIR")
-        shutil.copytree(source, frozen, symlinks=False)
+        GoldenStore(dest).import_files(_tree_files(source, golden_rel))
+        frozen.mkdir(parents=True, exist_ok=True)
     else:
         try:
             proc = subprocess.run(["git", "archive", "--format=tar", good_sha, "--", golden_rel], cwd=repo,
@@ -175,9 +180,9 @@ def freeze_reference(repo: Path, golden_rel: str, dest: Path, good_sha: str | No
                 "pick a good revision that has committed goldens, give the folder with --golden-dir DIR, "
                 "or compare against the work tree's goldens with --reference worktree")
         dest.mkdir(parents=True, exist_ok=True)
-        _extract_tar(proc.stdout, dest)
+        GoldenStore(dest).import_files(_tar_files(proc.stdout))
         frozen.mkdir(parents=True, exist_ok=True)
-    if not any(name in ("metrics.parquet", "state.parquet") for _, _, files in os.walk(frozen) for name in files):
+    if not GoldenStore(frozen, read_only=True).find():
         where = "the work tree" if good_sha is None else f"the good revision {good_sha[:12]}"
         raise TrainguardError(f"{where} holds no golden files under {golden_rel}; bless and commit goldens first "
                               "(pytest --trainguard-bless), or give the golden folder with --golden-dir DIR")
@@ -200,24 +205,6 @@ class StepResult:
     @property
     def verdict(self) -> str:
         return VERDICTS.get(self.status, "aborted")
-
-
-_EXCEPTION_LINE = re.compile(r"^E\s+(\w+\.)*\w*(Error|Exception|Interrupt)\b.*")
-
-
-def _pytest_errors(output: str) -> list[str]:
-    """pytest's own error lines (`ERROR: not found: ...`, collection errors) and exception lines, for messages."""
-    picked: list[str] = []
-    for raw in output.splitlines():
-        line = raw.strip()
-        if (line.startswith(("ERROR:", "ERROR ")) or "not found:" in line or _EXCEPTION_LINE.match(line)) \
-                and line not in picked:
-            picked.append(line)
-    return picked[:8]
-
-
-def _not_found(errors: Sequence[str]) -> bool:
-    return any("not found:" in e for e in errors)
 
 
 def classify(pytest_exit: int, summary: dict[str, Any] | None) -> tuple[int, str]:
@@ -271,11 +258,8 @@ def run_step(repo: Path, cwd: Path, frozen: Path, work: Path, nodeids: Sequence[
                 setup_ok = False
                 result.reason = f"setup command exited {proc.returncode}"
         if setup_ok:
-            # `-p trainguard` loads the plugin by its entry-point name even where plugin autoloading is off.
-            cmd = [sys.executable, "-m", "pytest", "-p", "no:cacheprovider", "-p", "trainguard", "-q",
-                   "--trainguard-golden-dir", str(frozen), "--trainguard-report", str(report), "--", *nodeids]
-            proc = subprocess.run(cmd, cwd=cwd, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
-                                  text=True, errors="replace")
+            cmd = pytest_runs.check_against(nodeids, frozen, report)
+            proc = pytest_runs.run(cmd, cwd, env, merge_stderr=True)
             (report / PYTEST_OUTPUT).write_text(proc.stdout, encoding="utf-8")
             summary = None
             summary_path = report / "summary.json"
@@ -287,10 +271,10 @@ def run_step(repo: Path, cwd: Path, frozen: Path, work: Path, nodeids: Sequence[
             result.pytest_exit = proc.returncode
             result.status, result.reason = classify(proc.returncode, summary)
             result.rows = [r for r in (summary or {}).get("rows", []) if not r.get("blessing")]
-            result.errors = _pytest_errors(proc.stdout) if result.status == STEP_SKIP else []
+            result.errors = pytest_runs.error_lines(proc.stdout) if result.status == STEP_SKIP else []
             if result.status == STEP_SKIP and not result.errors:  # say something: pytest's last lines
                 result.errors = [line.rstrip() for line in proc.stdout.splitlines() if line.strip()][-6:]
-            exceptions = [e for e in result.errors if _EXCEPTION_LINE.match(e)]
+            exceptions = [e for e in result.errors if pytest_runs.EXCEPTION_LINE.match(e)]
             if exceptions:
                 result.reason += ": " + exceptions[-1][1:].strip()
     (report / STEP_FILE).write_text(json.dumps(asdict(result), indent=1), encoding="utf-8")
@@ -305,8 +289,8 @@ def step_line(result: StepResult, subject: str = "") -> str:
 
 
 def step_main(argv: Sequence[str] | None = None) -> int:
-    """`python -m trainguard.bisect step ...`, run by `git bisect run` at each commit."""
-    parser = argparse.ArgumentParser(prog="python -m trainguard.bisect step")
+    """`python -m trainguard.tools.bisect step ...`, run by `git bisect run` at each commit."""
+    parser = argparse.ArgumentParser(prog="python -m trainguard.tools.bisect step")
     parser.add_argument("--repo", required=True)
     parser.add_argument("--cwd", required=True)
     parser.add_argument("--frozen", required=True)
@@ -348,8 +332,6 @@ def _golden_rel(repo: Path, cwd: Path, golden_dir: str | None) -> str:
         path = Path(golden_dir)
         path = path if path.is_absolute() else cwd / path
     else:
-        from .cli import default_golden_dir
-
         path = default_golden_dir(cwd)
     try:
         rel = Path(os.path.realpath(path)).relative_to(os.path.realpath(repo))
@@ -440,7 +422,7 @@ def run_bisect(good: str, bad: str, nodeids: Sequence[str], *, setup: str | None
 def _bisect(repo: Path, cwd: Path, head: _Head, good: str, bad: str, good_sha: str, bad_sha: str,
             nodeids: Sequence[str], setup: str | None, frozen: Path, work: Path, echo: Echo, *,
             reference: str, reference_text: str, frozen_as: Path, explicit_golden_dir: bool) -> BisectOutcome:
-    step_cmd = [sys.executable, "-m", "trainguard.bisect", "step", "--repo", str(repo), "--cwd", str(cwd),
+    step_cmd = [sys.executable, "-m", "trainguard.tools.bisect", "step", "--repo", str(repo), "--cwd", str(cwd),
                 "--frozen", str(frozen), "--work", str(work)]
     if setup:
         step_cmd += ["--setup", setup]
@@ -542,7 +524,7 @@ def _stop(proc: subprocess.Popen[str]) -> None:
 
 def _untestable(which: str, rev: str, step: StepResult, nodeids: Sequence[str], setup: str | None) -> str:
     details = "".join(f"\n  {e}" for e in step.errors)
-    if step.pytest_exit in (4, 5) and (_not_found(step.errors) or step.pytest_exit == 5):
+    if step.pytest_exit in (4, 5) and (pytest_runs.not_found(step.errors) or step.pytest_exit == 5):
         return (f"pytest found none of the selected tests at the {which} revision {rev} ({step.reason}): "
                 f"{' '.join(nodeids)}{details}\n"
                 f"  check the node ids; list the tests there with: git checkout {rev} && "
@@ -570,15 +552,7 @@ def _tested(work: Path) -> list[tuple[str, int]]:
 
 def failures_section(output: str, max_lines: int = 200) -> list[str]:
     """The FAILURES section of pytest's output (up to the next ==== header), at most `max_lines` lines."""
-    lines = output.splitlines()
-    start = next((i for i, line in enumerate(lines) if re.match(r"^=+ FAILURES =+$", line)), None)
-    if start is None:
-        return []
-    end = next((i for i in range(start + 1, len(lines)) if re.match(r"^=+ .+ =+$", lines[i])), len(lines))
-    section = lines[start + 1:end]
-    if len(section) > max_lines:
-        section = section[:max_lines] + [f"... ({len(section) - max_lines} more lines)"]
-    return section
+    return pytest_runs.section(output, "FAILURES", max_lines)
 
 
 def unfreeze(lines: Sequence[str], work: Path, golden_dir: str, explicit: bool) -> list[str]:
@@ -599,8 +573,6 @@ def unfreeze(lines: Sequence[str], work: Path, golden_dir: str, explicit: bool) 
 
 
 def describe(outcome: BisectOutcome) -> str:
-    from .report import table
-
     repo = Path(outcome.repo)
     lines = []
     if outcome.tested:
@@ -632,7 +604,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv[:1] == ["step"]:
         return step_main(argv[1:])
-    print("usage: python -m trainguard.bisect step ... (run by 'trainguard bisect'; use that command instead)",
+    print("usage: python -m trainguard.tools.bisect step ... (run by 'trainguard bisect'; use that command instead)",
           file=sys.stderr)
     return 2
 

@@ -12,33 +12,26 @@ import sys
 from pathlib import Path
 from typing import Any, Sequence
 
-from .errors import TrainguardError
+from ..core.errors import TrainguardError
+from ..core.project import default_golden_dir
+from ..core.text import flatten as _flatten
+from ..core.text import fmt, table
+from ..tools.pytest_runs import PytestCommands
 
 EXIT_USAGE = 2
-
-
-def _flatten(data: Any, prefix: str = "") -> list[tuple[str, Any]]:
-    if isinstance(data, dict):
-        items: list[tuple[str, Any]] = []
-        for key in sorted(data):
-            items.extend(_flatten(data[key], f"{prefix}{key}."))
-        return items
-    return [(prefix.rstrip("."), data)]
 
 
 # -- env -------------------------------------------------------------------------------
 
 
 def cmd_env(args: argparse.Namespace) -> int:
-    from .environment import fingerprint
+    from ..core.environment import fingerprint
 
     fp = fingerprint()
     if args.json:
         print(json.dumps(fp, indent=2, sort_keys=True))
         return 0
     print("environment fingerprint (what trainguard stores with every golden):")
-    from .report import table
-
     print(table(["key", "value"], _flatten(fp)))
     print("\nnote: inside a guarded test trainguard also turns on deterministic mode; "
           "the 'deterministic' values above are this process's, outside any test.")
@@ -49,8 +42,6 @@ def cmd_env(args: argparse.Namespace) -> int:
 
 
 def _show_meta(meta: dict[str, Any]) -> list[str]:
-    from .report import table
-
     lines = []
     tol = meta.get("tolerances") or {}
     rows = [
@@ -76,8 +67,6 @@ def _show_meta(meta: dict[str, Any]) -> list[str]:
 def _show_metrics(metrics: dict[str, Any]) -> list[str]:
     import numpy as np
 
-    from .report import fmt, table
-
     rows = []
     for name, s in metrics.items():
         v = s.values
@@ -93,8 +82,6 @@ def _show_metrics(metrics: dict[str, Any]) -> list[str]:
 
 
 def _show_state(tensors: dict[str, Any]) -> list[str]:
-    from .report import fmt, table
-
     rows = []
     for t in tensors.values():
         rows.append([t.name, t.kind, t.dtype, "x".join(map(str, t.shape)) or "scalar", t.sha256[:16],
@@ -105,36 +92,40 @@ def _show_state(tensors: dict[str, Any]) -> list[str]:
                    "values stored"], rows)]
 
 
+def _store(root: Path, read_only: bool = True, golden_dir_option: str | None = None) -> Any:
+    from ..core.store import GoldenStore
+
+    return GoldenStore(root, read_only=read_only, commands=PytestCommands(golden_dir_option))
+
+
 def cmd_show(args: argparse.Namespace) -> int:
-    from . import golden
+    from ..core import golden_format
 
     path = Path(args.path)
     if not path.exists():
         raise TrainguardError(f"{path}: no such file or folder")
     if path.is_file():
-        if path.name == golden.STATE_FILE:
-            tensors, meta = golden.read_state(path)
-            body = _show_state(tensors)
-        else:
-            metrics, meta = golden.read_metrics(path)
-            body = _show_metrics(metrics)
+        state = path.name == golden_format.STATE_FILE
+        records, meta = _store(path.parent).read_file(path, golden_format.STATE_FILE if state else
+                                                      golden_format.METRICS_FILE)
+        body = _show_state(records) if state else _show_metrics(records)
         print(f"golden file {path}")
         print("\n".join(_show_meta(meta) + [""] + body))
         return 0
-    if golden.exists(path):
-        run = golden.read_run(path)
+    store = _store(path)
+    if store.exists(path):
+        run = store.read(path)
         print(f"golden {path}")
         print("\n".join(_show_meta(run.meta) + [""] + _show_metrics(run.metrics) + [""] + _show_state(run.tensors)))
         return 0
-    found = golden.find_goldens(path)
+    found = store.find()
     if not found:
-        raise TrainguardError(f"{path}: holds no golden files (no {golden.METRICS_FILE} or {golden.STATE_FILE} below it)")
-    from .report import table
-
+        raise TrainguardError(f"{path}: holds no golden files (no {golden_format.METRICS_FILE} or "
+                              f"{golden_format.STATE_FILE} below it)")
     rows = []
     for folder in found:
         try:
-            run = golden.read_run(folder)
+            run = store.read(folder)
         except TrainguardError as exc:
             rows.append([str(folder.relative_to(path)), "-", "-", "-", "-", f"unreadable: {getattr(exc, 'problem', exc)}"])
             continue
@@ -149,46 +140,13 @@ def cmd_show(args: argparse.Namespace) -> int:
 # -- bless --from / diff -------------------------------------------------------------
 
 
-def default_golden_dir(start: Path | None = None) -> Path:
-    """The golden dir pytest would use from this folder: its ini option, else 'golden'."""
-    import configparser
-
-    start = start or Path.cwd()
-    for folder in (start, *start.parents):
-        pyproject = folder / "pyproject.toml"
-        if pyproject.is_file():
-            try:
-                import tomllib
-            except ImportError:  # Python 3.10: no TOML reader in the standard library
-                tomllib = None  # type: ignore[assignment]
-            if tomllib is not None:
-                try:
-                    data = tomllib.loads(pyproject.read_text(encoding="utf-8"))
-                except (ValueError, OSError):
-                    data = {}
-                ini = data.get("tool", {}).get("pytest", {}).get("ini_options")
-                if isinstance(ini, dict):
-                    return folder / str(ini.get("trainguard_golden_dir", "golden"))
-        for name, section in (("pytest.ini", "pytest"), ("tox.ini", "pytest"), ("setup.cfg", "tool:pytest")):
-            path = folder / name
-            if path.is_file():
-                parser = configparser.ConfigParser()
-                try:
-                    parser.read(path, encoding="utf-8")
-                except configparser.Error:
-                    continue
-                if parser.has_section(section):
-                    return folder / parser.get(section, "trainguard_golden_dir", fallback="golden")
-    return start / "golden"
-
-
 def cmd_bless(args: argparse.Namespace) -> int:
-    from .results import adopt
+    from ..core.results import adopt
 
     golden_dir = Path(args.golden_dir) if args.golden_dir else default_golden_dir()
-    adoptions = adopt(args.source, golden_dir, args.nodeids, reason=args.reason or "", dry_run=args.dry_run)
-    from .report import table
-
+    commands = PytestCommands(args.golden_dir)
+    adoptions = adopt(_store(Path(args.source)), _store(golden_dir, read_only=False, golden_dir_option=args.golden_dir),
+                      args.nodeids, reason=args.reason or "", dry_run=args.dry_run, commands=commands)
     verb = "would adopt" if args.dry_run else "adopted"
     print(f"{verb} {len(adoptions)} result(s) from {args.source} into {golden_dir}:")
     print(table(["golden", "test", "from"], [[a.outcome, a.nodeid, str(a.source)] for a in adoptions]))
@@ -198,22 +156,21 @@ def cmd_bless(args: argparse.Namespace) -> int:
 
 
 def cmd_diff(args: argparse.Namespace) -> int:
-    from . import golden
-    from .comparison import compare
-    from .report import describe_comparison
-    from .tolerance import DEFAULT_ATOL, DEFAULT_RTOL, Policy, Tolerance
+    from dataclasses import replace
 
-    a = golden.read_run(args.a)
-    b = golden.read_run(args.b)
-    tol = a.meta.get("tolerances") or {}
-    per_metric = {k: Tolerance(float(v.get("rtol", DEFAULT_RTOL)), float(v.get("atol", DEFAULT_ATOL)))
-                  for k, v in (tol.get("metrics") or {}).items() if isinstance(v, dict)}
-    policy = Policy(
-        default=Tolerance(args.rtol if args.rtol is not None else float(tol.get("rtol", DEFAULT_RTOL)),
-                          args.atol if args.atol is not None else float(tol.get("atol", DEFAULT_ATOL))),
-        exact=bool(args.exact or tol.get("exact", False)),
-        metrics={} if (args.rtol is not None or args.atol is not None) else per_metric,
-    )
+    from ..core.comparison import compare
+    from ..core.report import describe_comparison
+    from ..core.tolerance import Policy, Tolerance
+
+    a = _store(Path(args.a)).read(Path(args.a))
+    b = _store(Path(args.b)).read(Path(args.b))
+    recorded = Policy.from_json(a.meta.tolerances)
+    policy = recorded.with_default(
+        Tolerance(args.rtol if args.rtol is not None else recorded.default.rtol,
+                  args.atol if args.atol is not None else recorded.default.atol),
+        keep_metrics=args.rtol is None and args.atol is None)
+    if args.exact:
+        policy = replace(policy, exact=True)
     cmp = compare(a, b, policy)
     print(f"trainguard diff: {args.a} (reference) vs {args.b}")
     print(describe_comparison(cmp))
@@ -224,7 +181,7 @@ def cmd_diff(args: argparse.Namespace) -> int:
 
 
 def cmd_bisect(args: argparse.Namespace) -> int:
-    from .bisect import describe, run_bisect
+    from ..tools.bisect import describe, run_bisect
 
     outcome = run_bisect(args.good, args.bad, args.nodeids, setup=args.setup, reference=args.reference,
                          golden_dir=args.golden_dir, keep=args.keep, echo=lambda line: print(line, flush=True))
@@ -237,7 +194,7 @@ def cmd_bisect(args: argparse.Namespace) -> int:
 
 
 def cmd_calibrate(args: argparse.Namespace) -> int:
-    from .calibrate import calibrate
+    from ..tools.calibrate import calibrate
 
     return calibrate(args.nodeid, runs=args.runs, safety=args.safety, write=args.write,
                      golden_dir=args.golden_dir, jobs=args.jobs, keep_runs=args.keep_runs,
@@ -245,7 +202,7 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
 
 
 def cmd_merge_reports(args: argparse.Namespace) -> int:
-    from .report_files import merge_reports
+    from ..core.report_files import merge_reports
 
     path, count = merge_reports(args.dirs, args.out)
     print(f"merged {count} row(s) from {len(args.dirs)} report folder(s) into {path}")
@@ -253,81 +210,6 @@ def cmd_merge_reports(args: argparse.Namespace) -> int:
 
 
 # -- prune -----------------------------------------------------------------------------
-
-
-def collect_nodeids(pytest_args: Sequence[str]) -> list[str]:
-    """Node ids of the tests pytest collects with `pytest_args`, from a `--collect-only -q` subprocess."""
-    import shlex
-    import subprocess
-
-    cmd = [sys.executable, "-m", "pytest", "--collect-only", "-q", "-p", "no:cacheprovider", *pytest_args]
-    shown = shlex.join(["python", *cmd[1:]])
-    try:
-        proc = subprocess.run(cmd, capture_output=True, text=True, errors="replace")
-    except OSError as exc:
-        raise TrainguardError(f"could not start pytest ({exc}); nothing was removed") from None
-    lines = proc.stdout.splitlines()
-    if proc.returncode == 5:
-        raise TrainguardError(f"pytest collected no tests ({shown}), so every golden would count as unused; "
-                              "nothing was removed. Run prune from the project root, with the arguments that "
-                              "select your whole suite (or none)")
-    if proc.returncode != 0:
-        errors = [line for line in lines if line.startswith(("ERROR", "E   "))][:8]
-        detail = errors or [line for line in (lines + proc.stderr.splitlines()) if line.strip()][-8:]
-        raise TrainguardError("collecting the tests failed (pytest exit status "
-                              f"{proc.returncode}); nothing was removed. pytest said:\n  " + "\n  ".join(detail)
-                              + f"\nFix that, then re-run; to see pytest's full output: {shown}")
-    nodeids = []
-    for line in lines:
-        if not line.strip():
-            break  # the node ids end at the first blank line; "N tests collected" and warnings follow
-        if "::" in line:
-            nodeids.append(line)
-    return nodeids
-
-
-_GOLDEN_ENTRIES = ("metrics.parquet", "state.parquet", "trace.parquet", ".trainguard-commit", ".trainguard-lock")
-
-
-def _inside_without_links(folder: Path, root: Path) -> bool:
-    """`folder` lies below `root`, and neither it nor any folder between them is a symbolic link."""
-    try:
-        rel = folder.relative_to(root)
-    except ValueError:
-        return False
-    if not rel.parts or ".." in rel.parts:
-        return False
-    current = root
-    for part in rel.parts:
-        current = current / part
-        if current.is_symlink() or not current.is_dir():
-            return False
-    return True
-
-
-def _remove_golden(folder: Path, root: Path) -> bool:
-    """Delete one golden folder's files (symbolic links are unlinked, never followed), then the empty
-    folders up to `root`. A folder that also holds subfolders keeps them and everything but its golden files."""
-    import os
-
-    if not _inside_without_links(folder, root):
-        return False
-    entries = list(os.scandir(folder))
-    nested = any(e.is_dir(follow_symlinks=False) for e in entries)
-    for entry in entries:
-        if entry.is_dir(follow_symlinks=False):
-            continue
-        if nested and entry.name not in _GOLDEN_ENTRIES and not entry.name.startswith(".tmp-"):
-            continue
-        os.unlink(entry.path)
-    current = folder
-    while current != root:
-        try:
-            current.rmdir()  # only when empty
-        except OSError:
-            break
-        current = current.parent
-    return True
 
 
 def _shown(path: Path) -> str:
@@ -361,8 +243,7 @@ def _selection_args(pytest_args: list[str]) -> list[str]:
 
 
 def cmd_prune(args: argparse.Namespace) -> int:
-    from . import golden
-    from .paths import golden_folder
+    from ..tools.pytest_runs import collect_nodeids
 
     pytest_args = list(args.pytest_args)
     if pytest_args[:1] == ["--"]:
@@ -383,9 +264,10 @@ def cmd_prune(args: argparse.Namespace) -> int:
                               f"Give the real folder: trainguard prune --delete --golden-dir {golden_dir.resolve()}")
     if not golden_dir.is_dir():
         raise TrainguardError(f"{golden_dir}: no such golden folder; give it with --golden-dir DIR")
+    store = _store(golden_dir, read_only=not args.delete, golden_dir_option=args.golden_dir)
     nodeids = collect_nodeids(pytest_args)
-    used = {golden_folder(golden_dir, nodeid) for nodeid in nodeids}
-    found = golden.find_goldens(golden_dir)
+    used = {store.folder(nodeid) for nodeid in nodeids}
+    found = store.find()
     unused = [folder for folder in found if folder not in used]
     print(f"{len(found)} golden folder(s) under {golden_dir}, {len(nodeids)} test(s) collected: "
           f"{len(unused)} golden folder(s) used by no collected test")
@@ -399,33 +281,32 @@ def cmd_prune(args: argparse.Namespace) -> int:
               + (f" --golden-dir {args.golden_dir}" if args.golden_dir else "") + (f" {extra}" if extra else ""))
         return 1
     for folder in unused:
-        if _remove_golden(folder, golden_dir):
+        if store.remove(folder):
             print(f"  removed {_shown(folder)}")
         else:
             print(f"  skipped {_shown(folder)} (not a real folder inside {golden_dir}: a symbolic link is on its path)")
     return 0
 
 
-# -- demo ------------------------------------------------------------------------------
+# -- upgrade-goldens, demo ---------------------------------------------------------------
 
 
 def cmd_upgrade_goldens(args: argparse.Namespace) -> int:
-    from . import golden
-    from .report import table
+    from ..core import golden_format
 
     root = Path(args.dir) if args.dir else default_golden_dir()
-    done = golden.upgrade_goldens(root)
+    done = _store(root, read_only=False).upgrade()
     if not done:
-        raise TrainguardError(f"{root}: holds no golden files (no {golden.METRICS_FILE} below it)")
+        raise TrainguardError(f"{root}: holds no golden files (no {golden_format.METRICS_FILE} below it)")
     upgraded = sum(1 for _, outcome in done if outcome != "current")
-    print(f"{upgraded} of {len(done)} golden folder(s) under {root} upgraded to format {golden.FORMAT_VERSION}"
+    print(f"{upgraded} of {len(done)} golden folder(s) under {root} upgraded to format {golden_format.FORMAT_VERSION}"
           + (" (nothing to do)" if not upgraded else ""))
     print(table(["golden", "format"], [[str(f.relative_to(root)), o] for f, o in done]))
     return 0
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from .demo import run_demo
+    from ..tools.demo import run_demo
 
     return run_demo(keep=args.keep)
 
@@ -512,6 +393,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    from ..core import fixes
+
+    fixes.install(PytestCommands())
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "func", None):

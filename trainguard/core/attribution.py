@@ -12,12 +12,10 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Iterable
 
-import numpy as np
-
-from .comparison import CHANGED, CLOSE, IDENTICAL
-from .checksum import sketch_distance
-from .tolerance import Tolerance, bitwise_equal, norm_allowed, within
-from .record import STAGE_ORDER, STAGES, TraceEntry
+from .records import STAGE_ORDER, STAGES, TraceEntry
+from .text import join_names
+from .tolerance import Tolerance, judge
+from .verdicts import CHANGED, CLOSE, IDENTICAL
 
 #: Tensors named in a divergence line before the rest is counted.
 MAX_NAMES = 6
@@ -61,8 +59,7 @@ def _join(stages: list[str]) -> str:
 
 
 def _names(names: list[str]) -> str:
-    shown = ", ".join(names[:MAX_NAMES])
-    return shown + (f" and {len(names) - MAX_NAMES} more" if len(names) > MAX_NAMES else "")
+    return join_names(names, MAX_NAMES)
 
 
 def _groups(entries: Iterable[TraceEntry]) -> dict[tuple[int, int, int, int], dict[str, TraceEntry]]:
@@ -74,27 +71,12 @@ def _groups(entries: Iterable[TraceEntry]) -> dict[tuple[int, int, int, int], di
     return out
 
 
-def _stats(e: TraceEntry) -> np.ndarray:
-    return np.array([e.min, e.max, e.mean, e.l2, e.nonfinite], dtype=np.float64)
-
-
 def _entry_verdict(g: TraceEntry | None, n: TraceEntry | None, tol: Tolerance, exact: bool) -> str:
-    if g is None or n is None or g.shape != n.shape or g.dtype != n.dtype:
-        return CHANGED
-    if g.sha256 == n.sha256:
-        return IDENTICAL
-    if exact:
-        return CHANGED
-    a, b = _stats(g), _stats(n)
-    if not bool(np.all(bitwise_equal(a, b) | within(a, b, tol))):
-        return CHANGED
     # Statistics cannot see a reordering (a shuffled batch has the same min, max, mean and
-    # norm); the position-hashed sketch can.
-    if g.sketch is not None and n.sketch is not None and g.sketch.shape == n.sketch.shape:
-        numel = int(np.prod(g.shape)) if g.shape else 1
-        if not sketch_distance(g.sketch, n.sketch) <= norm_allowed(numel, g.l2, tol):
-            return CHANGED
-    return CLOSE
+    # norm); the position-hashed sketch that `judge` also checks can.
+    if g is None or n is None:
+        return CHANGED
+    return judge(g, n, tol, exact).verdict
 
 
 def compare_traces(golden: list[TraceEntry], new: list[TraceEntry], tol: Tolerance, exact: bool = False) -> TraceDiff:

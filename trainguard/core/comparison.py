@@ -9,18 +9,14 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 
-from .record import MetricSeries, Run, TensorRecord
-from .checksum import sketch_distance
-from .tolerance import Policy, Tolerance, bitwise_equal, norm_allowed, within
-
-IDENTICAL = "identical"
-CLOSE = "within tolerance"
-CHANGED = "changed"
-_RANK = {IDENTICAL: 0, CLOSE: 1, CHANGED: 2}
+from .attribution import TraceDiff, compare_traces
+from .meta import GoldenMeta
+from .records import MetricSeries, Run, TensorRecord
+from .tolerance import Policy, Tolerance, bitwise_equal, judge, within
+from .verdicts import CHANGED, CLOSE, IDENTICAL, worst
 
 
 @dataclass
@@ -65,9 +61,9 @@ class Comparison:
     metrics: list[MetricDiff]
     tensors: list[TensorDiff]
     policy: Policy
-    golden_meta: dict[str, Any] = field(default_factory=dict)
-    new_meta: dict[str, Any] = field(default_factory=dict)
-    trace: Any = None  # attribution.TraceDiff when both runs carry a trace
+    golden_meta: GoldenMeta = field(default_factory=GoldenMeta)
+    new_meta: GoldenMeta = field(default_factory=GoldenMeta)
+    trace: TraceDiff | None = None  # when both runs carry a trace
 
     @property
     def failed(self) -> bool:
@@ -151,46 +147,21 @@ def compare_tensor(name: str, golden: TensorRecord | None, new: TensorRecord | N
         assert present is not None
         reason = "not recorded by the new run" if new is None else "not in the golden"
         return TensorDiff(name, present.kind, CHANGED, [reason], numel=present.numel)
-    diff = TensorDiff(name, golden.kind, IDENTICAL, numel=golden.numel)
-    if golden.dtype != new.dtype:
-        diff.reasons.append(f"dtype {golden.dtype} -> {new.dtype}")
-    if golden.shape != new.shape:
-        diff.reasons.append(f"shape {list(golden.shape)} -> {list(new.shape)}")
-    if diff.reasons:
-        diff.verdict = CHANGED
+    j = judge(golden, new, policy.default, exact=policy.exact)
+    diff = TensorDiff(name, golden.kind, j.verdict, j.reasons, basis=j.basis, numel=golden.numel,
+                      sketch_distance=j.sketch_distance, sketch_allowed=j.sketch_allowed)
+    if j.golden is None or j.new is None:  # bits or structure decided
         return diff
-    if golden.sha256 == new.sha256:
-        return diff
-    diff.reasons.append("checksum")
-    tol = policy.default
-    if golden.values is not None and new.values is not None and golden.values.shape == new.values.shape:
-        g, n = golden.values, new.values
-        diff.basis = "values"
-    else:
-        g = np.array([golden.min, golden.max, golden.mean, golden.l2, golden.nonfinite], dtype=np.float64)
-        n = np.array([new.min, new.max, new.mean, new.l2, new.nonfinite], dtype=np.float64)
-        diff.basis = "statistics"
-    ok = bitwise_equal(g, n) if policy.exact else (bitwise_equal(g, n) | within(g, n, tol))
+    g, n = j.golden, j.new
     with np.errstate(invalid="ignore", over="ignore"):
         absd = np.abs(n - g)
     finite = np.isfinite(absd)
     if finite.any():
         diff.max_abs = float(absd[finite].max())
         diff.max_rel = float(_rel(absd[finite], g[finite]).max())
-    diff.elements_off = int((~ok).sum())
+    diff.elements_off = j.elements_off
     if diff.basis == "values" and g.size == 1:
         diff.golden_value, diff.new_value = float(g[0]), float(n[0])
-    if diff.basis == "statistics" and golden.sketch is not None and new.sketch is not None \
-            and golden.sketch.shape == new.sketch.shape:
-        diff.basis = "statistics+sketch"
-        diff.sketch_distance = sketch_distance(golden.sketch, new.sketch)
-        diff.sketch_allowed = norm_allowed(golden.numel, golden.l2, tol)
-        if not diff.sketch_distance <= diff.sketch_allowed:
-            diff.elements_off += 1
-    if policy.exact or diff.elements_off:
-        diff.verdict = CHANGED
-    else:
-        diff.verdict = CLOSE
     nonfinite_new = int(np.sum(~np.isfinite(n) & np.isfinite(g)))
     if nonfinite_new and diff.basis == "values":
         diff.reasons.append(f"{nonfinite_new} value(s) became non-finite")
@@ -198,7 +169,32 @@ def compare_tensor(name: str, golden: TensorRecord | None, new: TensorRecord | N
 
 
 def compare(golden: Run, new: Run, policy: Policy) -> Comparison:
-    """Compare `new` against `golden` under `policy`. Never raises for differences."""
+    """Compare `new` against `golden` under `policy`. Never raises for differences.
+
+    Parameters
+    ----------
+    golden : Run
+        The reference (the rule is asymmetric: |new - golden| <= atol + rtol * |golden|).
+    new : Run
+        The run to judge.
+    policy : Policy
+        Tolerances (overall, per metric) or `exact=True` for bitwise identity.
+
+    Returns
+    -------
+    Comparison
+        Per metric and state entry a verdict (identical, within tolerance, changed) with the
+        first step off and the sizes of the differences; `outcome` is the worst of them, and
+        `trace` says where two traced runs part.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> g = Run(metrics={"loss": MetricSeries([0, 1], [1.0, 0.5])})
+    >>> n = Run(metrics={"loss": MetricSeries([0, 1], [1.0, 0.5000001])})
+    >>> compare(g, n, Policy()).outcome
+    'within tolerance'
+    """
     metrics = [
         compare_metric(name, golden.metrics.get(name), new.metrics.get(name), policy)
         for name in sorted(set(golden.metrics) | set(new.metrics))
@@ -207,11 +203,8 @@ def compare(golden: Run, new: Run, policy: Policy) -> Comparison:
         compare_tensor(name, golden.tensors.get(name), new.tensors.get(name), policy)
         for name in sorted(set(golden.tensors) | set(new.tensors))
     ]
-    verdicts = [m.verdict for m in metrics] + [t.verdict for t in tensors]
-    outcome = max(verdicts, key=_RANK.__getitem__) if verdicts else IDENTICAL
+    outcome = worst([m.verdict for m in metrics] + [t.verdict for t in tensors])
     trace = None
     if golden.trace is not None and new.trace is not None:
-        from .attribution import compare_traces
-
         trace = compare_traces(golden.trace, new.trace, policy.default, exact=policy.exact)
     return Comparison(outcome, metrics, tensors, policy, golden_meta=golden.meta, new_meta=new.meta, trace=trace)

@@ -3,14 +3,37 @@
 A `Run` is the single value that flows through trainguard: the capture layer builds one,
 the golden store writes and reads one, the comparison takes two. Keeping it free of torch
 and pytest lets every later stage work on goldens without either.
+
+State entries (`TensorRecord`) and trace entries (`TraceEntry`) describe a tensor the same
+way: dtype, shape, SHA-256 of its bytes and one `Stats`. Their constructors keep the flat
+field order of the public API; `Summarized.stats` gives the shared view that comparisons use.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any, Mapping
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from .meta import GoldenMeta
+
+
+@dataclass(frozen=True)
+class Stats:
+    """float64 summary of a tensor's finite values, plus how many were not finite."""
+
+    min: float
+    max: float
+    mean: float
+    l2: float
+    nonfinite: int
+
+    def as_array(self) -> np.ndarray:
+        """The five numbers as float64, in the order goldens store them (compared elementwise)."""
+        return np.array([self.min, self.max, self.mean, self.l2, self.nonfinite], dtype=np.float64)
 
 
 @dataclass
@@ -25,8 +48,30 @@ class MetricSeries:
         self.values = np.asarray(self.values, dtype=np.float64)
 
 
+class Summarized:
+    """What state and trace entries share: a tensor's identity (dtype, shape, bytes) and its `Stats`."""
+
+    dtype: str
+    shape: tuple[int, ...]
+    sha256: str
+    min: float
+    max: float
+    mean: float
+    l2: float
+    nonfinite: int
+    sketch: np.ndarray | None
+
+    @property
+    def stats(self) -> Stats:
+        return Stats(self.min, self.max, self.mean, self.l2, self.nonfinite)
+
+    @property
+    def numel(self) -> int:
+        return math.prod(int(d) for d in self.shape)
+
+
 @dataclass
-class TensorRecord:
+class TensorRecord(Summarized):
     """What a golden keeps of one tensor or number of the final state."""
 
     name: str
@@ -42,13 +87,6 @@ class TensorRecord:
     values: np.ndarray | None = None  # flat float64, None when over the stored-values limit
     sketch: np.ndarray | None = None  # count-sketch (checksum.STATE_SKETCH floats) when values are not stored
 
-    @property
-    def numel(self) -> int:
-        n = 1
-        for d in self.shape:
-            n *= int(d)
-        return n
-
 
 #: Training stages of one optimizer step, in the order they happen.
 STAGES = ("data", "forward", "backward", "update")
@@ -56,7 +94,7 @@ STAGE_ORDER = {s: i for i, s in enumerate(STAGES)}
 
 
 @dataclass
-class TraceEntry:
+class TraceEntry(Summarized):
     """One tensor seen at one stage of one optimizer step (see `trace`)."""
 
     step: int
@@ -77,13 +115,28 @@ class TraceEntry:
 
 @dataclass
 class Run:
-    """Everything recorded by one guarded test, plus the metadata stored beside it."""
+    """Everything recorded by one guarded test, plus the metadata stored beside it.
+
+    `meta` is a `GoldenMeta` (a plain dict given here is validated into one); it is
+    replaced as a whole, never edited in place: `run.meta = run.meta.with_(reason=...)`.
+    """
 
     metrics: dict[str, MetricSeries] = field(default_factory=dict)
     tensors: dict[str, TensorRecord] = field(default_factory=dict)
-    meta: dict[str, Any] = field(default_factory=dict)
+    meta: GoldenMeta = field(default_factory=lambda: _meta_from({}))
     trace: list[TraceEntry] | None = None  # present when the test called trajectory.watch
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        if name == "meta":
+            value = _meta_from(value)
+        object.__setattr__(self, name, value)
 
     @property
     def is_empty(self) -> bool:
         return not self.metrics and not self.tensors
+
+
+def _meta_from(value: Mapping[str, Any]) -> GoldenMeta:
+    from .meta import GoldenMeta
+
+    return value if isinstance(value, GoldenMeta) else GoldenMeta.from_json(value)

@@ -10,14 +10,21 @@ from __future__ import annotations
 
 import json
 import os
-from urllib.parse import quote
+import shutil
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
+from urllib.parse import quote
 
-from .comparison import CHANGED, CLOSE, IDENTICAL, Comparison
+from .atomic import write_atomic
+from .errors import TrainguardError
 from .paths import safe_component
-from .report import environment_changes, short
+from .report import environment_changes, first_divergence
+from .verdicts import ATTENTION_ORDER, CHANGED, CLOSE, IDENTICAL, NONDETERMINISTIC
+
+if TYPE_CHECKING:
+    from .guard import GuardResult
+    from .records import Run
 
 SUMMARY_MD = "summary.md"
 SUMMARY_JSON = "summary.json"
@@ -35,29 +42,7 @@ class Row:
     blessing: bool = False
 
 
-def first_divergence(cmp: Comparison | None) -> str:
-    """The one-line answer to "where did it change?"."""
-    if cmp is None:
-        return ""
-    if cmp.trace is not None and cmp.trace.first_bitwise is not None:
-        return cmp.trace.summary()
-    for m in cmp.metrics:
-        if m.verdict == CHANGED:
-            if m.first_step is None:
-                return f"metric {m.name}: {m.note}"
-            text = (f"{m.name} at step {m.first_step}: {m.golden:.9g} -> {m.new:.9g} "
-                    f"(rel {short(m.rel_diff)}, allowed {short(m.allowed)})")
-            return text + (f"; {m.note}" if m.note else "")
-    changed = [t.name for t in cmp.tensors if t.verdict == CHANGED]
-    if changed:
-        return "state: " + ", ".join(changed[:4]) + (f" and {len(changed) - 4} more" if len(changed) > 4 else "")
-    for m in cmp.metrics:
-        if m.verdict == CLOSE:
-            return f"{m.name} first differs at step {m.first_step} (within tolerance)"
-    return ""
-
-
-def row_for(result: Any, report_dir: Path | None = None) -> dict[str, Any]:
+def row_for(result: GuardResult, report_dir: Path | None = None) -> dict[str, Any]:
     """A JSON-ready summary row of one verdict; writes its plot into `report_dir` when it changed.
 
     Rows are plain data so that they travel from pytest-xdist workers to the controller
@@ -92,7 +77,7 @@ def _md_escape(text: str) -> str:
 
 
 _ICON = {IDENTICAL: "identical", CLOSE: "within tolerance", CHANGED: "**changed**",
-         "nondeterministic": "**nondeterministic**"}
+         NONDETERMINISTIC: "**nondeterministic**"}
 
 
 def summary_markdown(rows: list[Row], plots_note: str = "") -> str:
@@ -106,8 +91,8 @@ def summary_markdown(rows: list[Row], plots_note: str = "") -> str:
     else:
         lines.append(", ".join(f"{n} {k}" for k, n in counts.items()) + f" (of {len(checks)} guarded tests)")
         lines += ["", "| test | outcome | first divergence | environment changes |", "| --- | --- | --- | --- |"]
-        order = {CHANGED: 0, "nondeterministic": 1, "no golden": 2, "unreadable golden": 3, CLOSE: 4, IDENTICAL: 5}
-        for r in sorted(checks, key=lambda r: (order.get(r.outcome, 6), r.nodeid)):
+        order = {outcome: i for i, outcome in enumerate(ATTENTION_ORDER)}
+        for r in sorted(checks, key=lambda r: (order.get(r.outcome, len(order)), r.nodeid)):
             div = _md_escape(r.divergence) or "-"
             if r.plot:
                 div += f" ([plot]({quote(r.plot)}))"
@@ -118,23 +103,6 @@ def summary_markdown(rows: list[Row], plots_note: str = "") -> str:
     if plots_note:
         lines += ["", plots_note]
     return "\n".join(lines) + "\n"
-
-
-def _temp_name(path: Path) -> Path:
-    """A temp file beside `path`, unique per process and call (readers and cleaners skip '.tmp-')."""
-    import uuid
-
-    return path.with_name(f".tmp-{path.name}.{os.getpid()}.{uuid.uuid4().hex[:12]}")
-
-
-def _atomic_text(path: Path, text: str) -> None:
-    tmp = _temp_name(path)
-    try:
-        tmp.write_text(text, encoding="utf-8")
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
 
 
 PLOTS_NOTE = ("Plots of changed trajectories need matplotlib: `pip install 'trainguard[report]'`, "
@@ -148,16 +116,14 @@ def write_report(report_dir: str | os.PathLike[str], rows: list[dict[str, Any]])
     note = PLOTS_NOTE if any(r.get("plots_unavailable") for r in rows) else ""
     # Sorted: under pytest-xdist rows arrive in completion order, which changes from run to run.
     rows = sorted(rows, key=lambda r: (r["nodeid"], bool(r.get("blessing"))))
-    _atomic_text(report_dir / SUMMARY_MD, summary_markdown([_row(r) for r in rows], note))
+    write_atomic(report_dir / SUMMARY_MD, summary_markdown([_row(r) for r in rows], note), fsync=False)
     payload = {"format": REPORT_FORMAT, "rows": rows}
-    _atomic_text(report_dir / SUMMARY_JSON, json.dumps(payload, indent=1, sort_keys=True))
+    write_atomic(report_dir / SUMMARY_JSON, json.dumps(payload, indent=1, sort_keys=True), fsync=False)
     return report_dir / SUMMARY_MD
 
 
 def read_rows(report_dir: str | os.PathLike[str]) -> list[dict[str, Any]]:
     """Rows of a report folder's summary.json (for merging shards)."""
-    from .errors import TrainguardError
-
     path = Path(report_dir) / SUMMARY_JSON
     try:
         payload = json.loads(path.read_text(encoding="utf-8"))
@@ -179,10 +145,6 @@ def merge_reports(sources: list[str | os.PathLike[str]], out: str | os.PathLike[
 
     Everything is read and checked before anything is written, so an error leaves `out` as it was.
     """
-    import shutil
-
-    from .errors import TrainguardError
-
     out = Path(out)
     seen: dict[Path, str] = {}
     for source in sources:
@@ -224,7 +186,7 @@ def merge_reports(sources: list[str | os.PathLike[str]], out: str | os.PathLike[
     return write_report(out, rows), len(rows)
 
 
-def plot_trajectories(path: Path, title: str, golden: Any, new: Any) -> bool:
+def plot_trajectories(path: Path, title: str, golden: Run, new: Run) -> bool:
     """Golden and new trajectory per metric, and |difference| on a log scale. False if nothing to plot."""
     import matplotlib
 
@@ -255,12 +217,8 @@ def plot_trajectories(path: Path, title: str, golden: Any, new: Any) -> bool:
     fig.suptitle(title, fontsize=9)
     fig.tight_layout()
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = _temp_name(path)  # pytest-xdist workers write plots side by side: atomically, each its own
-    try:
-        fig.savefig(tmp, dpi=90, format="png")
-        os.replace(tmp, path)
+    try:  # pytest-xdist workers write plots side by side: atomically, each its own
+        write_atomic(path, lambda tmp: fig.savefig(tmp, dpi=90, format="png"), fsync=False)
     finally:
         plt.close(fig)
-        if tmp.exists():
-            tmp.unlink()
     return True

@@ -13,18 +13,13 @@ from typing import Any, Iterator
 import numpy as np
 
 from . import checksum
+from .checksum import is_tensor as _is_tensor
 from .errors import UsageError
-from .record import MetricSeries, Run, TensorRecord
+from .records import MetricSeries, Run, TensorRecord
+from .text import nested_items
 
 #: Default for `trainguard_max_values`: tensors up to this many elements keep their values.
 DEFAULT_MAX_VALUES = 65_536
-
-
-def _is_tensor(obj: Any) -> bool:
-    import sys
-
-    torch = sys.modules.get("torch")
-    return torch is not None and isinstance(obj, torch.Tensor)
 
 
 def _scalar(name: str, value: Any, step: int) -> float:
@@ -273,13 +268,9 @@ def _hyper_entries(name: str, value: Any) -> Iterator[tuple[str, str, Any]]:
 
 def _state_entries(name: str, value: Any) -> Iterator[tuple[str, str, Any]]:
     """Optimizer state: tensors and numbers, lists (L-BFGS history) flattened with an index."""
-    if value is None or isinstance(value, str):
-        return
-    if _is_tensor(value) or isinstance(value, (numbers.Number, np.ndarray)):
-        yield name, "optimizer", value
-    elif isinstance(value, (list, tuple)):
-        for i, item in enumerate(value):
-            yield from _state_entries(f"{name}.{i}", item)
-    elif isinstance(value, dict):
-        for key in sorted(value, key=str):
-            yield from _state_entries(f"{name}.{key}", value[key])
+    for key, item in nested_items(name, value, _is_state_value):
+        yield key, "optimizer", item
+
+
+def _is_state_value(value: Any) -> bool:
+    return _is_tensor(value) or isinstance(value, (numbers.Number, np.ndarray))

@@ -136,9 +136,15 @@ def guarded_setup(seed: int, deterministic: bool | str = True, threads: int | No
     torch.set_float32_matmul_precision("highest")
 
 
+#: Text of torch's deterministic-mode alerts (warn_only=True warns with it, True raises with it).
+_DETERMINISM_ALERT = ("does not have a deterministic implementation", "use_deterministic_algorithms")
+
+
+def is_determinism_alert(text: str) -> bool:
+    """True for the message torch gives for an op without a deterministic implementation."""
+    return any(marker in text for marker in _DETERMINISM_ALERT)
+
+
 def is_nondeterminism_error(exc: BaseException) -> bool:
     """True for the RuntimeError torch raises in deterministic mode for an op without a deterministic kernel."""
-    text = str(exc)
-    return isinstance(exc, RuntimeError) and (
-        "does not have a deterministic implementation" in text or "use_deterministic_algorithms" in text
-    )
+    return isinstance(exc, RuntimeError) and is_determinism_alert(str(exc))

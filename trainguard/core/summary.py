@@ -4,8 +4,9 @@ from __future__ import annotations
 
 from typing import Any, Iterable
 
-_CHECK_ORDER = ("identical", "within tolerance", "changed", "nondeterministic", "no golden", "unreadable golden")
-_BLESS_ORDER = ("new", "changed", "unchanged", "nondeterministic")
+from .verdicts import BLESS_ORDER as _BLESS_ORDER
+from .verdicts import CHECK_ORDER as _CHECK_ORDER
+from .verdicts import IDENTICAL, NONDETERMINISTIC
 
 
 def summary_lines(rows: Iterable[dict[str, Any]]) -> list[str]:
@@ -18,13 +19,13 @@ def summary_lines(rows: Iterable[dict[str, Any]]) -> list[str]:
         parts = [f"{n} {k}" for k in _CHECK_ORDER if (n := sum(r["outcome"] == k for r in checks))]
         lines.append(f"guarded tests checked: {len(checks)} ({', '.join(parts)})")
         for r in checks:
-            if r["outcome"] != "identical":
+            if r["outcome"] != IDENTICAL:
                 lines.append(f"  {r['outcome']:<17} {r['nodeid']}")
     if blesses:
         parts = [f"{n} {k}" for k in _BLESS_ORDER if (n := sum(r["outcome"] == k for r in blesses))]
         lines.append(f"goldens blessed: {len(blesses)} ({', '.join(parts)})")
         for r in blesses:
-            if r["outcome"] == "nondeterministic":  # its runs disagreed: nothing was written
+            if r["outcome"] == NONDETERMINISTIC:  # its runs disagreed: nothing was written
                 lines.append(f"  {r['outcome']:<9} {r['nodeid']} (not blessed: its repeated runs differ)")
             else:
                 lines.append(f"  {r['outcome']:<9} {r['nodeid']} -> {r.get('folder', '')}")

@@ -1,4 +1,4 @@
-"""Golden storage: writing and reading a `Run` as Parquet files.
+"""The golden file format: Parquet schemas, metadata keys, the content digest, strict reads.
 
 Layout of one golden folder (documented in README, "Golden file format"):
 
@@ -9,43 +9,33 @@ Layout of one golden folder (documented in README, "Golden file format"):
 - `trace.parquet` (optional): one row per watched tensor per stage per optimizer step.
 
 Every file carries Parquet key-value metadata: `trainguard.format_version`, `trainguard.meta`
-(JSON: seed, tolerances, fingerprint, bless time and reason, node id) and, from format 2 on,
-`trainguard.run_id` (shared by all files of one write), `trainguard.writer` (the trainguard
-version that wrote it) and `trainguard.digest` (see `content_digest`).
+(JSON, see `meta.GoldenMeta`) and, from format 2 on, `trainguard.run_id` (shared by all files
+of one write), `trainguard.writer` (the trainguard version that wrote it) and
+`trainguard.digest` (see `content_digest`).
 
-Guarantees (README, "Reliability and security"):
-
-- Per file: a write goes to a uniquely named temp file in the same folder, is fsynced and
-  moved into place with `os.replace`, so a reader sees the old file or the new one.
-- Per set: a write holds an exclusive lock on the folder (`flock` on the folder itself),
-  writes every file to a temp file first, then records the switch in a commit record
-  (`.trainguard-commit`) before renaming. A process killed after the commit record exists
-  is rolled forward: by the next write for real, and by readers in what they read (readers
-  never write). Killed before it, the old files are untouched. So a folder always reads as
-  one complete write. Readers hold a shared lock and check that all files share one run id.
-- Reading is strict: size limits before loading, schema checked column by column, the
-  digest verified, metadata JSON parsed with depth and type checks; every failure becomes a
-  `GoldenError` naming the file. Nothing on the read path uses pickle or eval.
+Reading is strict: size limits before loading, schema checked column by column, the digest
+verified, metadata JSON parsed with depth and type checks; every failure becomes a
+`GoldenError` naming the file. Nothing here uses pickle or eval. Which files make a golden,
+and how they are written together, is the store's business (`store.GoldenStore`).
 """
 
 from __future__ import annotations
 
-import contextlib
-import errno
 import hashlib
 import json
 import math
-import os
 import struct
-import time
-import uuid
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any, Callable
 
 import numpy as np
 
-from .errors import GoldenCorruptError, GoldenError, GoldenMissingError, GoldenVersionError
-from .record import STAGE_ORDER, MetricSeries, Run, TensorRecord, TraceEntry
+from .atomic import short_error
+from .errors import GoldenCorruptError, GoldenError, GoldenVersionError, UsageError
+from .fixes import FixCommands, current
+from .meta import GoldenMeta, MetaError
+from .records import STAGE_ORDER, MetricSeries, Run, TensorRecord, TraceEntry
+from .version import __version__
 
 #: Format 2 added `trainguard.run_id`, `trainguard.writer` and `trainguard.digest`;
 #: format 1 files (no digest) are still read, and `trainguard upgrade-goldens` converts them.
@@ -55,37 +45,25 @@ OLDEST_FORMAT = 1
 METRICS_FILE = "metrics.parquet"
 STATE_FILE = "state.parquet"
 TRACE_FILE = "trace.parquet"
+#: The files of a golden, in the order they are written and read.
+KINDS = (METRICS_FILE, STATE_FILE, TRACE_FILE)
 KEY_VERSION = b"trainguard.format_version"
 KEY_META = b"trainguard.meta"
 KEY_RUN_ID = b"trainguard.run_id"
 KEY_WRITER = b"trainguard.writer"
 KEY_DIGEST = b"trainguard.digest"
 KEY_PREFIX = b"trainguard."
-TEMP_PREFIX = ".tmp-"
-#: Commit record of an in-progress (or interrupted) write: which temp file becomes which file.
-COMMIT_FILE = ".trainguard-commit"
-#: Lock file, only where a folder itself cannot be locked (some network file systems).
-LOCK_FILE = ".trainguard-lock"
 #: Largest golden file read by default; larger files are refused before loading.
 DEFAULT_MAX_FILE_BYTES = 512 * 1024 * 1024
 #: Declared uncompressed data may be at most this many times the file size limit.
 UNCOMPRESSED_FACTOR = 4
 #: Metadata JSON nested deeper than this is refused (trainguard writes depth 4 at most).
 MAX_META_DEPTH = 32
-#: A commit record is a few hundred bytes; anything much larger is not one of ours.
-_MAX_COMMIT_BYTES = 64 * 1024
-#: Seconds a writer waits for another writer of the same folder, and a reader for a writer.
-WRITE_LOCK_TIMEOUT = 120.0
-READ_LOCK_TIMEOUT = 30.0
-#: Reads of a folder whose files come from different writes are retried this often.
-_READ_ATTEMPTS = 8
 _DIGEST_LABEL = b"trainguard golden digest 1\x00"
 
 _STATE_FLOAT_COLUMNS = ("min", "max", "mean", "l2")
 #: Columns a format-1 reader tolerates missing (added late in format 1; read as null).
 _OPTIONAL_COLUMNS = ("sketch",)
-_KINDS = (METRICS_FILE, STATE_FILE, TRACE_FILE)
-
 
 def _schemas() -> tuple[Any, Any]:
     import pyarrow as pa
@@ -110,7 +88,6 @@ def _schemas() -> tuple[Any, Any]:
     )
     return metrics, state
 
-
 def _trace_schema() -> Any:
     import pyarrow as pa
 
@@ -133,19 +110,19 @@ def _trace_schema() -> Any:
         ]
     )
 
-
-def _schema_of(kind: str) -> Any:
+def schema_of(kind: str) -> Any:
     if kind == TRACE_FILE:
         return _trace_schema()
     metrics, state = _schemas()
     return metrics if kind == METRICS_FILE else state
 
 
+
 #: Parquet write options per file. Floats: byte-stream-split + zstd compresses smooth float
 #: series far better than plain encodings; dictionary encoding suits repeated names; steps
 #: grow by a constant stride, which delta encoding stores in a few bits each (100,000 steps
 #: x 4 metrics: 0.89x the bytes of numpy.savez_compressed of the values alone, see benchmarks/).
-_WRITE_OPTIONS: dict[str, dict[str, Any]] = {
+WRITE_OPTIONS: dict[str, dict[str, Any]] = {
     METRICS_FILE: dict(compression="zstd", use_dictionary=["metric"],
                        column_encoding={"value": "BYTE_STREAM_SPLIT", "step": "DELTA_BINARY_PACKED"}),
     STATE_FILE: dict(compression="zstd", use_dictionary=["kind", "dtype"]),
@@ -157,7 +134,9 @@ _WRITE_OPTIONS: dict[str, dict[str, Any]] = {
 }
 
 
+
 # -- content digest ------------------------------------------------------------------
+
 
 
 def _u64(n: int) -> bytes:
@@ -254,87 +233,13 @@ def content_digest(kind: str, table: Any, metadata: dict[bytes, bytes]) -> str:
     return "sha256:" + h.hexdigest()
 
 
-# -- folder locks --------------------------------------------------------------------
 
+# -- writing -------------------------------------------------------------------------
 
-@contextlib.contextmanager
-def _folder_lock(folder: Path, exclusive: bool, timeout: float) -> Iterator[None]:
-    """Hold `flock` on the folder itself (exclusive for writers, shared for readers).
-
-    Locking the folder's own descriptor leaves no lock file behind. Where a folder cannot be
-    locked (some network file systems) writers lock `.trainguard-lock` instead and readers
-    that file when it exists. Windows has no `flock`: there the lock is a no-op and only the
-    run-id check (readers retry, then report files from different writes) protects sets.
-    """
-    try:
-        import fcntl
-    except ImportError:  # Windows
-        yield
-        return
-    mode = fcntl.LOCK_EX if exclusive else fcntl.LOCK_SH
-    fd = -1
-    try:
-        fd = os.open(folder, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
-        _flock(fcntl, fd, mode, timeout, folder)
-    except OSError as exc:
-        if fd != -1:
-            os.close(fd)
-            fd = -1
-        if exc.errno in (errno.ENOENT, errno.ENOTDIR):
-            raise
-        lock_path = folder / LOCK_FILE
-        try:
-            if exclusive:
-                fd = os.open(lock_path, os.O_RDWR | os.O_CREAT | getattr(os, "O_NOFOLLOW", 0), 0o644)
-            elif lock_path.is_file() and not lock_path.is_symlink():
-                fd = os.open(lock_path, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0))
-            if fd != -1:
-                _flock(fcntl, fd, fcntl.LOCK_EX if exclusive else fcntl.LOCK_SH, timeout, folder)
-        except OSError:
-            if fd != -1:
-                os.close(fd)
-                fd = -1
-            if exclusive:
-                raise
-    try:
-        yield
-    finally:
-        if fd != -1:
-            os.close(fd)  # closing the descriptor releases the lock
-
-
-def _flock(fcntl: Any, fd: int, mode: int, timeout: float, folder: Path) -> None:
-    deadline = time.monotonic() + timeout
-    delay = 0.001
-    while True:
-        try:
-            fcntl.flock(fd, mode | fcntl.LOCK_NB)
-            return
-        except BlockingIOError:
-            if time.monotonic() >= deadline:
-                raise GoldenError(folder, f"is locked by another trainguard process for over {timeout:.0f} s",
-                                  "wait for the other bless to finish, or stop it") from None
-            time.sleep(delay)
-            delay = min(delay * 2, 0.05)
-
-
-def _fsync_dir(folder: Path) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
 
 
 def max_bytes_from_ini(raw: Any) -> int:
     """The ini option `trainguard_max_file_mib` (MiB, may be fractional) in bytes; default 512 MiB."""
-    from .errors import UsageError
-
     if raw in (None, ""):
         return DEFAULT_MAX_FILE_BYTES
     try:
@@ -346,32 +251,23 @@ def max_bytes_from_ini(raw: Any) -> int:
     return max(int(mib * 1024 * 1024), 1)
 
 
-# -- writing -------------------------------------------------------------------------
-
-
-def _writer_version() -> str:
-    from . import __version__
-
-    return __version__
-
-
 def _metadata(meta_json: bytes, run_id: str) -> dict[bytes, bytes]:
     return {
         KEY_VERSION: str(FORMAT_VERSION).encode(),
         KEY_META: meta_json,
         KEY_RUN_ID: run_id.encode(),
-        KEY_WRITER: _writer_version().encode(),
+        KEY_WRITER: __version__.encode(),
     }
 
 
-def _sealed(kind: str, table: Any, meta_json: bytes, run_id: str) -> Any:
-    """`table` with format-2 metadata, digest included."""
+def seal(kind: str, table: Any, meta_json: bytes, run_id: str) -> Any:
+    """`table` with format-2 metadata (`meta_json` stored as given), digest included."""
     metadata = _metadata(meta_json, run_id)
     metadata[KEY_DIGEST] = content_digest(kind, table, metadata).encode()
     return table.replace_schema_metadata(metadata)
 
 
-def _metrics_table(run: Run) -> Any:
+def metrics_table(run: Run) -> Any:
     import pyarrow as pa
 
     schema, _ = _schemas()
@@ -391,7 +287,7 @@ def _metrics_table(run: Run) -> Any:
     return pa.Table.from_arrays(columns, schema=schema)
 
 
-def _state_table(run: Run) -> Any:
+def state_table(run: Run) -> Any:
     import pyarrow as pa
 
     _, schema = _schemas()
@@ -415,7 +311,7 @@ def _state_table(run: Run) -> Any:
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
-def _trace_table(run: Run) -> Any:
+def trace_table(run: Run) -> Any:
     import pyarrow as pa
 
     schema = _trace_schema()
@@ -427,226 +323,54 @@ def _trace_table(run: Run) -> Any:
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
-def _temp_name(final: str) -> str:
-    return f"{TEMP_PREFIX}{final}.{os.getpid()}.{uuid.uuid4().hex[:12]}"
-
-
-def _write_temp(table: Any, folder: Path, kind: str) -> Path:
-    """Write `table` to a fresh, fsynced temp file next to `kind`; return its path."""
-    import pyarrow.parquet as pq
-
-    tmp = folder / _temp_name(kind)
-    try:
-        pq.write_table(table, tmp, **_WRITE_OPTIONS[kind])
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
-    except BaseException:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
-        raise
-    return tmp
-
-
-def _write_text_atomic(path: Path, data: bytes) -> None:
-    tmp = path.with_name(_temp_name(path.name))
-    try:
-        with open(tmp, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    finally:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
-
-
-def _commit(folder: Path, replace: dict[str, Path], remove: list[str], run_id: str) -> None:
-    """Switch the folder to the temp files in `replace` (and drop the files in `remove`).
-
-    The commit record is written (and fsynced) first: from then on the switch counts as
-    done, and an interrupted one is completed by the next writer and seen whole by readers.
-    """
-    record = {"run_id": run_id, "replace": {k: p.name for k, p in replace.items()}, "remove": sorted(remove)}
-    _write_text_atomic(folder / COMMIT_FILE, json.dumps(record, sort_keys=True).encode())
-    _fsync_dir(folder)
-    _apply_commit(folder, record)
-
-
-def _apply_commit(folder: Path, record: dict[str, Any]) -> None:
-    for final, tmp_name in record["replace"].items():
-        tmp = folder / tmp_name
-        if tmp.is_file() and not tmp.is_symlink():
-            os.replace(tmp, folder / final)
-    for final in record["remove"]:
-        path = folder / final
-        if path.is_symlink() or path.is_file():
-            path.unlink()
-    _fsync_dir(folder)
-    (folder / COMMIT_FILE).unlink()
-    _fsync_dir(folder)
-
-
-def _recover(folder: Path) -> None:
-    """Complete a write that was interrupted after its commit point (caller holds the lock)."""
-    path = folder / COMMIT_FILE
-    if not (path.exists() or path.is_symlink()):
-        return
-    try:
-        record = _read_commit(folder)
-    except GoldenCorruptError:
-        record = None
-    if record is None:
-        path.unlink()  # unusable record: the write that follows replaces every file anyway
-        return
-    _apply_commit(folder, record)
-
-
-def _check_writable_target(folder: Path, root: str | os.PathLike[str] | None) -> None:
-    _check_confined(folder, root)
-    for kind in _KINDS:
-        path = folder / kind
-        if path.exists() and not path.is_symlink() and not path.is_file():
-            raise GoldenCorruptError(path, "is not a regular file (a folder?) where trainguard keeps a golden file",
-                                     "remove it, then bless again")
-
-
-def write_run(folder: str | os.PathLike[str], run: Run, root: str | os.PathLike[str] | None = None) -> None:
-    """Write `run` as a golden (or result) folder: all files or none, as one set.
-
-    Holds the folder's exclusive lock throughout; completes an interrupted earlier write and
-    removes leftover temp files first (only under the lock, so never another writer's).
-    `root`, when given, is the golden dir the folder must stay inside (no symlinks between).
-    """
-    folder = Path(folder)
-    _check_confined(folder, root)
-    folder.mkdir(parents=True, exist_ok=True)
-    _check_writable_target(folder, root)
-    meta = {k: v for k, v in run.meta.items() if k != "format_version"}  # the file's own key says that
-    meta_json = json.dumps(meta, sort_keys=True, allow_nan=True).encode()
-    run_id = uuid.uuid4().hex
-    tables = {METRICS_FILE: _metrics_table(run), STATE_FILE: _state_table(run)}
-    if run.trace is not None:
-        tables[TRACE_FILE] = _trace_table(run)
-    with _folder_lock(folder, exclusive=True, timeout=WRITE_LOCK_TIMEOUT):
-        _recover(folder)
-        _clean_temp_files(folder)
-        _write_set(folder, {k: _sealed(k, t, meta_json, run_id) for k, t in tables.items()}, run_id)
-
-
-def _write_set(folder: Path, tables: dict[str, Any], run_id: str) -> None:
-    written: dict[str, Path] = {}
-    try:
-        for kind, table in tables.items():
-            written[kind] = _write_temp(table, folder, kind)
-        remove = [k for k in _KINDS if k not in tables and (folder / k).exists()]
-        _commit(folder, written, remove, run_id)
-    finally:
-        for tmp in written.values():
-            with contextlib.suppress(OSError):
-                if tmp.exists():
-                    tmp.unlink()
-
-
-def _clean_temp_files(folder: Path) -> None:
-    """Remove temp files an interrupted earlier write left behind (caller holds the lock)."""
-    for leftover in folder.glob(TEMP_PREFIX + "*"):
-        try:
-            if leftover.is_symlink() or leftover.is_file():
-                leftover.unlink()
-        except OSError:
-            pass
-
 
 # -- reading -------------------------------------------------------------------------
 
 
-def exists(folder: str | os.PathLike[str]) -> bool:
-    folder = Path(folder)
-    return any(os.path.lexists(folder / name) for name in (METRICS_FILE, STATE_FILE, COMMIT_FILE))
+
+def encode_meta(meta: GoldenMeta) -> bytes:
+    """The `trainguard.meta` bytes: sorted keys, so the same metadata always gives the same bytes."""
+    return json.dumps(meta.to_json(), sort_keys=True, allow_nan=True).encode()
 
 
-def _check_confined(folder: Path, root: str | os.PathLike[str] | None) -> None:
-    """Refuse a golden folder that is, or sits below, a symbolic link (up to `root`)."""
-    if folder.is_symlink():
-        raise GoldenCorruptError(folder, "is a symbolic link; golden folders must be real folders",
-                                 "replace the link with the folder it points to")
-    if root is None:
-        return
-    root_abs = Path(os.path.abspath(root))
-    here = Path(os.path.abspath(folder))
-    try:
-        rel = here.relative_to(root_abs)
-    except ValueError:
-        raise GoldenCorruptError(folder, f"is outside the golden dir {root}") from None
-    current = root_abs
-    for part in rel.parts:
-        current = current / part
-        if current.is_symlink():
-            raise GoldenCorruptError(current, "is a symbolic link inside the golden dir; golden folders must be "
-                                     "real folders", "replace the link with the folder it points to")
-    if here.exists() and root_abs.exists():
-        real_root = os.path.realpath(root_abs)
-        if os.path.commonpath([real_root, os.path.realpath(here)]) != real_root:
-            raise GoldenCorruptError(folder, f"leads outside the golden dir {root}")
+def tables_of(run: Run) -> dict[str, Any]:
+    """The Arrow tables of a run's golden files (trace only when the run was traced)."""
+    tables = {METRICS_FILE: metrics_table(run), STATE_FILE: state_table(run)}
+    if run.trace is not None:
+        tables[TRACE_FILE] = trace_table(run)
+    return tables
 
 
-def _read_commit(folder: Path) -> dict[str, Any] | None:
-    """The commit record of an interrupted write, validated, or None when there is none."""
-    path = folder / COMMIT_FILE
-    if not os.path.lexists(path):
-        return None
-    if path.is_symlink() or not path.is_file():
-        raise GoldenCorruptError(path, "is not a regular file")
-    try:
-        with open(path, "rb") as fh:
-            raw = fh.read(_MAX_COMMIT_BYTES + 1)
-    except OSError as exc:
-        raise GoldenCorruptError(path, f"cannot be read ({_short(exc)})") from None
-    if len(raw) > _MAX_COMMIT_BYTES:
-        raise GoldenCorruptError(path, f"is larger than {_MAX_COMMIT_BYTES} bytes; not a trainguard commit record")
-    try:
-        record = json.loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, ValueError, RecursionError):
-        raise GoldenCorruptError(path, "is not valid JSON") from None
-    ok = (isinstance(record, dict) and isinstance(record.get("run_id"), str)
-          and isinstance(record.get("replace"), dict) and isinstance(record.get("remove"), list))
-    if ok:
-        for final, tmp in record["replace"].items():
-            ok = ok and final in _KINDS and isinstance(tmp, str) and tmp.startswith(TEMP_PREFIX + final + ".") \
-                and "/" not in tmp and "\\" not in tmp and "\x00" not in tmp and len(tmp) < 200
-        ok = ok and all(isinstance(r, str) and r in _KINDS and r not in record["replace"] for r in record["remove"])
-    if not ok:
-        raise GoldenCorruptError(path, "is not a valid trainguard commit record", "remove it, then bless again")
-    return record
+def parquet_writer(kind: str, table: Any) -> Callable[[Path], None]:
+    """A writer of `table` as the golden file `kind` (with that file's encodings), for `atomic`."""
+    import pyarrow.parquet as pq
+
+    def write(path: Path) -> None:
+        pq.write_table(table, path, **WRITE_OPTIONS[kind])
+
+    return write
 
 
-def _resolve_files(folder: Path) -> dict[str, Path]:
-    """The file to read for each golden file present, after an interrupted write's commit."""
-    files = {k: folder / k for k in _KINDS if os.path.lexists(folder / k)}
-    record = _read_commit(folder)
-    if record is not None:
-        for final, tmp_name in record["replace"].items():
-            tmp = folder / tmp_name
-            if os.path.lexists(tmp):
-                files[final] = tmp
-        for final in record["remove"]:
-            files.pop(final, None)
-    return files
+class FileRead:
+    """One verified golden file: its Arrow table, metadata, format version and run id (None in format 1)."""
 
-
-class _FileRead:
     __slots__ = ("table", "meta", "version", "run_id")
 
-    def __init__(self, table: Any, meta: dict[str, Any], version: int, run_id: str | None) -> None:
+    def __init__(self, table: Any, meta: GoldenMeta, version: int, run_id: str | None) -> None:
         self.table, self.meta, self.version, self.run_id = table, meta, version, run_id
 
 
-def _read_file(path: Path, kind: str, max_bytes: int) -> _FileRead:
-    """Read and verify one golden file; `path` may be a commit's temp file for `kind`."""
+def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
+              commands: FixCommands | None = None) -> FileRead:
+    """Read and verify one golden file; `path` may be a commit's temp file for `kind`.
+
+    Raises `GoldenCorruptError` or `GoldenVersionError` naming `path`; `commands` supplies
+    the re-bless command quoted when a digest does not match.
+    """
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    expected = _schema_of(kind)
+    expected = schema_of(kind)
     if path.is_symlink():
         raise GoldenCorruptError(path, "is a symbolic link; goldens must be regular files", "replace it with the real file")
     if not path.is_file():
@@ -657,7 +381,7 @@ def _read_file(path: Path, kind: str, max_bytes: int) -> _FileRead:
     try:
         size = path.stat().st_size
     except OSError as exc:
-        raise GoldenCorruptError(path, f"cannot be read ({_short(exc)})") from None
+        raise GoldenCorruptError(path, f"cannot be read ({short_error(exc)})") from None
     if size > max_bytes:
         raise GoldenCorruptError(
             path, f"is {size} bytes, over the {max_bytes}-byte limit for golden files; refusing to load it",
@@ -669,7 +393,7 @@ def _read_file(path: Path, kind: str, max_bytes: int) -> _FileRead:
     except GoldenError:
         raise
     except (pa.ArrowException, OSError, ValueError, MemoryError, OverflowError, TypeError, KeyError, IndexError) as exc:
-        raise GoldenCorruptError(path, f"is not a readable Parquet file ({_short(exc)})") from None
+        raise GoldenCorruptError(path, f"is not a readable Parquet file ({short_error(exc)})") from None
     raw = dict(schema.metadata or {})
     version, meta = _check_metadata(path, raw)
     present = []
@@ -691,11 +415,11 @@ def _read_file(path: Path, kind: str, max_bytes: int) -> _FileRead:
     try:
         table = pf.read(columns=present)
     except (pa.ArrowException, OSError, ValueError, MemoryError, OverflowError, TypeError, KeyError, IndexError) as exc:
-        raise GoldenCorruptError(path, f"cannot be read ({_short(exc)})") from None
+        raise GoldenCorruptError(path, f"cannot be read ({short_error(exc)})") from None
     run_id = None
     if version >= 2:
-        run_id = _check_digest(path, kind, table, raw)
-    return _FileRead(table, meta, version, run_id)
+        run_id = _check_digest(path, kind, table, raw, commands or current())
+    return FileRead(table, meta, version, run_id)
 
 
 def _check_declared_sizes(path: Path, md: Any, max_bytes: int) -> None:
@@ -722,10 +446,10 @@ def _check_declared_sizes(path: Path, md: Any, max_bytes: int) -> None:
                                  "(file size limit / 8); refusing to decode it")
 
 
-def _check_digest(path: Path, kind: str, table: Any, raw: dict[bytes, bytes]) -> str:
+def _check_digest(path: Path, kind: str, table: Any, raw: dict[bytes, bytes], commands: FixCommands) -> str:
     stored = raw.get(KEY_DIGEST)
     run_id = raw.get(KEY_RUN_ID)
-    fix = "restore the file from version control, or re-bless the test: pytest --trainguard-bless --trainguard-reason '...'"
+    fix = f"restore the file from version control, or re-bless the test: {commands.bless_any()}"
     if stored is None:
         raise GoldenCorruptError(path, "has no content digest although its format (2) requires one; it was edited "
                                  "or damaged after trainguard wrote it", fix)
@@ -734,17 +458,12 @@ def _check_digest(path: Path, kind: str, table: Any, raw: dict[bytes, bytes]) ->
     try:
         actual = content_digest(kind, table, raw)
     except (TypeError, ValueError, MemoryError) as exc:  # pragma: no cover - schema was checked before
-        raise GoldenCorruptError(path, f"cannot be digested ({_short(exc)})") from None
+        raise GoldenCorruptError(path, f"cannot be digested ({short_error(exc)})") from None
     if stored != actual.encode():
         raise GoldenCorruptError(
             path, "does not match the SHA-256 digest stored in it: its content or metadata was changed after "
             "trainguard wrote it (tampering or corruption)", fix)
     return run_id.decode("ascii")
-
-
-def _short(exc: BaseException) -> str:
-    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-    return text[:200]
 
 
 def _depth_ok(value: Any, limit: int) -> bool:
@@ -759,15 +478,7 @@ def _depth_ok(value: Any, limit: int) -> bool:
     return True
 
 
-#: Types of the metadata entries trainguard reads back (others pass through untouched).
-_META_TYPES: dict[str, tuple[type, ...]] = {
-    "nodeid": (str,), "seed": (int, type(None)), "deterministic": (bool, str), "tolerances": (dict,),
-    "max_values": (int, type(None)), "fingerprint": (dict,), "blessed_at": (str,), "reason": (str,),
-    "calibrated": (dict,), "adopted_from": (str,),
-}
-
-
-def _check_metadata(path: Path, raw: dict[bytes, bytes]) -> tuple[int, dict[str, Any]]:
+def _check_metadata(path: Path, raw: dict[bytes, bytes]) -> tuple[int, GoldenMeta]:
     version_raw = raw.get(KEY_VERSION)
     if version_raw is None:
         raise GoldenCorruptError(path, "has no trainguard format version in its metadata; it was not written by trainguard")
@@ -779,8 +490,6 @@ def _check_metadata(path: Path, raw: dict[bytes, bytes]) -> tuple[int, dict[str,
     except (UnicodeDecodeError, ValueError):
         raise GoldenCorruptError(path, f"has an unreadable format version {version_raw[:20]!r}") from None
     if version > FORMAT_VERSION:
-        from . import __version__
-
         writer = raw.get(KEY_WRITER, b"")[:40].decode("ascii", "replace")
         needed = f"trainguard {writer} or later" if writer else f"a trainguard newer than {__version__}"
         raise GoldenVersionError(
@@ -800,139 +509,10 @@ def _check_metadata(path: Path, raw: dict[bytes, bytes]) -> tuple[int, dict[str,
         raise GoldenCorruptError(path, "has metadata that is not a JSON object")
     if not _depth_ok(meta, MAX_META_DEPTH):
         raise GoldenCorruptError(path, f"has metadata nested deeper than {MAX_META_DEPTH} levels")
-    for key, types in _META_TYPES.items():
-        if key in meta and (not isinstance(meta[key], types) or (bool not in types and isinstance(meta[key], bool))):
-            raise GoldenCorruptError(path, f"has metadata {key!r} of the wrong type ({type(meta[key]).__name__})")
-    meta["format_version"] = version
-    return version, meta
-
-
-def read_metrics(path: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_BYTES) -> tuple[dict[str, MetricSeries], dict[str, Any]]:
-    """Read one `metrics.parquet`: the series by metric name, and the file's metadata."""
-    path = Path(path)
-    got = _read_file(path, METRICS_FILE, max_bytes)
-    return _metrics_from_table(path, got.table), got.meta
-
-
-def read_state(path: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_BYTES) -> tuple[dict[str, TensorRecord], dict[str, Any]]:
-    """Read one `state.parquet`: the records by tensor name, and the file's metadata."""
-    path = Path(path)
-    got = _read_file(path, STATE_FILE, max_bytes)
-    return _tensors_from_table(path, got.table), got.meta
-
-
-def read_trace(path: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_BYTES) -> list[TraceEntry]:
-    """Read one `trace.parquet` into entries in recording order."""
-    path = Path(path)
-    return _trace_from_table(path, _read_file(path, TRACE_FILE, max_bytes).table)
-
-
-def read_run(folder: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_BYTES,
-             root: str | os.PathLike[str] | None = None) -> Run:
-    """Read a golden (or result) folder as one consistent set. Never writes anything.
-
-    Raises GoldenMissingError, GoldenVersionError or GoldenCorruptError (naming the file).
-    `root`, when given, is the golden dir: symlinks between it and the folder are refused.
-    """
-    folder = Path(folder)
-    _check_confined(folder, root)
-    if not exists(folder):
-        raise GoldenMissingError(folder, "no golden here")
-    if not folder.is_dir():
-        raise GoldenCorruptError(folder, "is not a folder")
-    ids: list[Any] = []
     try:
-        lock = _folder_lock(folder, exclusive=False, timeout=READ_LOCK_TIMEOUT)
-        lock.__enter__()
-    except OSError as exc:
-        raise GoldenCorruptError(folder, f"cannot be opened ({_short(exc)})") from None
-    try:
-        for attempt in range(_READ_ATTEMPTS):
-            files = _resolve_files(folder)
-            for kind in (METRICS_FILE, STATE_FILE):
-                if kind not in files:
-                    raise GoldenCorruptError(folder / kind, "is missing while its sibling golden file exists")
-            reads = {kind: _read_file(path, kind, max_bytes) for kind, path in files.items()}
-            ids = [(kind, r.run_id) for kind, r in reads.items()]
-            if len({r for _, r in ids}) == 1:
-                metrics = _metrics_from_table(files[METRICS_FILE], reads[METRICS_FILE].table)
-                tensors = _tensors_from_table(files[STATE_FILE], reads[STATE_FILE].table)
-                trace = (_trace_from_table(files[TRACE_FILE], reads[TRACE_FILE].table)
-                         if TRACE_FILE in reads else None)
-                return Run(metrics=metrics, tensors=tensors, meta=reads[METRICS_FILE].meta, trace=trace)
-            time.sleep(0.005 * (attempt + 1))  # a writer without a lock (Windows) may be mid-switch
-    finally:
-        lock.__exit__(None, None, None)
-    described = ", ".join(f"{k}: {r or 'none (format 1)'}" for k, r in ids)
-    raise GoldenCorruptError(folder, f"holds files from different writes (run ids {described}); the set is mixed",
-                             "restore the folder from version control, or re-bless the test")
-
-
-def find_goldens(root: str | os.PathLike[str]) -> list[Path]:
-    """Every golden folder below `root` (folders holding a golden file), sorted, symlinks not followed."""
-    found = []
-    for dirpath, dirnames, filenames in os.walk(root, followlinks=False):
-        dirnames.sort()
-        if METRICS_FILE in filenames or STATE_FILE in filenames or COMMIT_FILE in filenames:
-            found.append(Path(dirpath))
-    return sorted(found)
-
-
-# -- upgrading older goldens ---------------------------------------------------------
-
-
-def upgrade_goldens(root: str | os.PathLike[str], max_bytes: int = DEFAULT_MAX_FILE_BYTES) -> list[tuple[Path, str]]:
-    """Convert every golden below `root` to the current format, in place.
-
-    Reads (and so validates) every golden first and writes nothing if any is unusable.
-    Then each older folder is rewritten as one set under its lock, with the same data and
-    the same `trainguard.meta` bytes, plus a run id, the writer version and the digest.
-    Folders already at the current format are not touched, so a second run changes nothing.
-    Returns (folder, "upgraded from format N" | "current") per golden folder.
-    """
-    root = Path(root)
-    if not root.is_dir():
-        raise GoldenMissingError(root, "no such golden folder")
-    folders = find_goldens(root)
-    versions = {}
-    for folder in folders:
-        read_run(folder, max_bytes=max_bytes, root=root)
-        versions[folder] = _folder_versions(folder, max_bytes)
-    out = []
-    for folder in folders:
-        if versions[folder] == {FORMAT_VERSION}:
-            out.append((folder, "current"))
-            continue
-        with _folder_lock(folder, exclusive=True, timeout=WRITE_LOCK_TIMEOUT):
-            _recover(folder)
-            _clean_temp_files(folder)
-            old = sorted(_folder_versions(folder, max_bytes))
-            if old == [FORMAT_VERSION]:  # another process upgraded it meanwhile
-                out.append((folder, "current"))
-                continue
-            _upgrade_folder(folder, max_bytes)
-        out.append((folder, f"upgraded from format {', '.join(map(str, old))}"))
-    return out
-
-
-def _folder_versions(folder: Path, max_bytes: int) -> set[int]:
-    return {_read_file(p, k, max_bytes).version for k, p in _resolve_files(folder).items()}
-
-
-def _upgrade_folder(folder: Path, max_bytes: int) -> None:
-    import pyarrow as pa
-
-    run_id = uuid.uuid4().hex
-    tables = {}
-    for kind, path in _resolve_files(folder).items():
-        got = _read_file(path, kind, max_bytes)
-        schema = _schema_of(kind)
-        raw_meta = dict(pq_metadata(path))
-        columns = [got.table.column(f.name) if f.name in got.table.column_names else pa.nulls(got.table.num_rows, f.type)
-                   for f in schema]
-        table = pa.Table.from_arrays(columns, schema=schema)
-        tables[kind] = _sealed(kind, table, raw_meta.get(KEY_META, b"{}"), run_id)
-    _write_set(folder, tables, run_id)
+        return version, GoldenMeta.from_json(meta, format_version=version)
+    except MetaError as exc:
+        raise GoldenCorruptError(path, str(exc)) from None
 
 
 def pq_metadata(path: Path) -> dict[bytes, bytes]:
@@ -942,10 +522,12 @@ def pq_metadata(path: Path) -> dict[bytes, bytes]:
     return dict(pq.ParquetFile(path).schema_arrow.metadata or {})
 
 
+
 # -- tables to records ---------------------------------------------------------------
 
 
-def _trace_from_table(path: Path, table: Any) -> list[TraceEntry]:
+
+def trace_from_table(path: Path, table: Any) -> list[TraceEntry]:
     entries = []
     for i, row in enumerate(table.to_pylist()):
         if any(row[k] is None for k in ("step", "stage", "seq", "call", "name", "dtype", "shape", "sha256", "nonfinite")):
@@ -962,7 +544,7 @@ def _trace_from_table(path: Path, table: Any) -> list[TraceEntry]:
     return entries
 
 
-def _metrics_from_table(path: Path, table: Any) -> dict[str, MetricSeries]:
+def metrics_from_table(path: Path, table: Any) -> dict[str, MetricSeries]:
     names = table.column("metric").to_pylist()
     steps = table.column("step").to_numpy(zero_copy_only=False)
     values = table.column("value").to_numpy(zero_copy_only=False)
@@ -996,7 +578,7 @@ def _list_cells(table: Any, column: str) -> list[np.ndarray | None]:
     return [None if nulls[i] else flat[offsets[i]:offsets[i + 1]].copy() for i in range(len(arr))]
 
 
-def _tensors_from_table(path: Path, table: Any) -> dict[str, TensorRecord]:
+def tensors_from_table(path: Path, table: Any) -> dict[str, TensorRecord]:
     values_cells = _list_cells(table, "values")
     sketch_cells = _list_cells(table, "sketch")
     rows = table.drop_columns([c for c in ("values", "sketch") if c in table.column_names]).to_pylist()

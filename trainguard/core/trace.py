@@ -21,19 +21,13 @@ from typing import Any, Callable, Iterator
 import numpy as np
 
 from . import checksum
-from .record import TraceEntry
+from .errors import UsageError
+from .records import TraceEntry
+from .text import nested_items
+
 
 def _flatten(prefix: str, value: Any) -> Iterator[tuple[str, Any]]:
-    import torch
-
-    if isinstance(value, torch.Tensor):
-        yield prefix, value
-    elif isinstance(value, (list, tuple)):
-        for i, item in enumerate(value):
-            yield from _flatten(f"{prefix}.{i}", item)
-    elif isinstance(value, dict):
-        for key in sorted(value, key=str):
-            yield from _flatten(f"{prefix}.{key}", value[key])
+    return nested_items(prefix, value, checksum.is_tensor)
 
 
 class Tracer:
@@ -46,8 +40,6 @@ class Tracer:
         import torch
 
         if Tracer._active is not None:
-            from .errors import UsageError
-
             raise UsageError("trajectory.watch: a trace is already running in this process; watch once per test")
         self.entries: list[TraceEntry] = []
         self.step = 0

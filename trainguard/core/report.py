@@ -7,54 +7,18 @@ and which command re-blesses if the change was intended.
 
 from __future__ import annotations
 
-import math
-from typing import Any, Iterable, Sequence
+import shlex
+from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
-from .comparison import CHANGED, CLOSE, IDENTICAL, Comparison
+from .comparison import Comparison
+from .text import fmt, join_names, short, table
+from .verdicts import CHANGED, CLOSE, IDENTICAL, NO_GOLDEN, NONDETERMINISTIC, UNREADABLE, rank
+
+if TYPE_CHECKING:
+    from .guard import GuardResult
 
 #: Most rows of one kind shown in a report before the rest is summarised.
 MAX_ROWS = 20
-
-
-def table(headers: Sequence[str], rows: Iterable[Sequence[Any]], indent: str = "  ") -> str:
-    """A plain-text table with left-aligned columns (no dependency on pandas)."""
-    rows = [[_cell(c) for c in row] for row in rows]
-    widths = [len(h) for h in headers]
-    for row in rows:
-        widths = [max(w, len(c)) for w, c in zip(widths, row)]
-    lines = [indent + "  ".join(h.ljust(w) for h, w in zip(headers, widths)).rstrip()]
-    for row in rows:
-        lines.append(indent + "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip())
-    return "\n".join(lines)
-
-
-def _cell(value: Any) -> str:
-    if value is None:
-        return "-"
-    if isinstance(value, float):
-        return fmt(value)
-    return str(value)
-
-
-def fmt(x: float) -> str:
-    """Numbers with enough digits to see a difference in float32 data (9 significant)."""
-    if x is None:
-        return "-"
-    if isinstance(x, float) and math.isnan(x):
-        return "nan"
-    if isinstance(x, float) and math.isinf(x):
-        return "inf" if x > 0 else "-inf"
-    if x == 0:
-        return "0"
-    if isinstance(x, int):
-        return str(x)
-    return f"{x:.9g}"
-
-
-def short(x: float) -> str:
-    if isinstance(x, float) and (math.isnan(x) or math.isinf(x)):
-        return fmt(x)
-    return f"{x:.2e}" if x else "0"
 
 
 def _steps_text(steps: list[int]) -> str:
@@ -63,7 +27,7 @@ def _steps_text(steps: list[int]) -> str:
     return f"{steps[0]}, {steps[1]}, {steps[2]} ... {steps[-1]} ({len(steps)} steps)"
 
 
-def environment_changes(golden_fp: dict[str, Any] | None, new_fp: dict[str, Any] | None) -> list[str]:
+def environment_changes(golden_fp: Mapping[str, Any] | None, new_fp: Mapping[str, Any] | None) -> list[str]:
     """Differences between two fingerprints as `path: old -> new` lines (computed with deepdiff)."""
     if not golden_fp or not new_fp:
         return []
@@ -137,7 +101,7 @@ def describe_comparison(cmp: Comparison) -> str:
 
     tensor_rows = []
     identical_tensors = 0
-    for t in sorted(cmp.tensors, key=lambda t: (-_rank(t.verdict), t.name)):
+    for t in sorted(cmp.tensors, key=lambda t: (-rank(t.verdict), t.name)):
         if t.verdict == IDENTICAL:
             identical_tensors += 1
             continue
@@ -169,11 +133,8 @@ def describe_comparison(cmp: Comparison) -> str:
     return "\n".join(out)
 
 
-def _rank(verdict: str) -> int:
-    return {IDENTICAL: 0, CLOSE: 1, CHANGED: 2}[verdict]
-
-
 def failure_report(nodeid: str, folder: str, cmp: Comparison, bless_command: str) -> str:
+    """The report of a changed test: where it changed, by how much, and the command that re-blesses it."""
     head = [f"trainguard: {nodeid} changed against its golden {folder}"]
     meta = cmp.golden_meta
     if meta.get("blessed_at"):
@@ -182,3 +143,94 @@ def failure_report(nodeid: str, folder: str, cmp: Comparison, bless_command: str
     return "\n".join(head) + "\n\n" + describe_comparison(cmp) + (
         f"\n\nif this change is intended, re-bless it:\n  {bless_command}"
     )
+
+
+def render_result(result: GuardResult, bless_command: str, hints: Sequence[str] = (), ci: str | None = None) -> str:
+    """The message a failing guarded test shows; empty when the outcome passes the test.
+
+    `bless_command` is pasted where the fix is a (re-)bless; `hints` follow a nondeterministic
+    outcome; `ci` (the CI variable's value in a CI run) explains that goldens are never made there.
+    """
+    nodeid, shown = result.nodeid, result.folder
+    if result.outcome == NONDETERMINISTIC:
+        agree = result.agreeing
+        lines = [
+            f"trainguard: {nodeid} is nondeterministic: {result.runs} runs with the same seed and settings "
+            f"in this process did not agree bit for bit.",
+            f"run {result.differing_run} differs from run 1 ({result.differing} of {result.runs - 1} repeats differ"
+            + (f"; run{'s' if len(agree) > 1 else ''} {', '.join(map(str, agree))} agree{'' if len(agree) > 1 else 's'} "
+               "with run 1" if agree else "") + "):",
+        ]
+        lines += [f"  first differing {w}" for w in result.where]
+        lines.append(f"The golden ({shown}) was neither compared nor written: a run that differs from itself "
+                     "cannot be checked against a golden.")
+        return "\n".join([*lines, *hints])
+    if result.blessing:
+        return ""
+    if result.outcome == NO_GOLDEN:
+        message = (f"trainguard: {nodeid} has no golden yet (looked in {shown}).\n"
+                   f"A guarded test never creates its golden silently. Record it with:\n  {bless_command}")
+        if ci is not None:
+            message += (f"\nThis is a CI run (the CI environment variable is {ci!r}): goldens are never created "
+                        "in CI. Run the command above on your machine, review the new golden and commit it "
+                        f"(git add {shlex.quote(shown)}).")
+        return message
+    if result.outcome == UNREADABLE:
+        return (f"trainguard: the golden of {nodeid} cannot be used:\n  {result.error}\n"
+                f"It was left untouched. If you want to replace it with this run, re-bless:\n  {bless_command}")
+    if result.outcome == CHANGED and result.comparison is not None:
+        return failure_report(nodeid, shown, result.comparison, bless_command)
+    return ""
+
+
+# -- one-line answers to "where did it change?" ------------------------------------------
+
+
+def first_divergence(cmp: Comparison | None) -> str:
+    """The one-line answer to "where did it change?" (summary rows, bisect)."""
+    if cmp is None:
+        return ""
+    if cmp.trace is not None and cmp.trace.first_bitwise is not None:
+        return cmp.trace.summary()
+    for m in cmp.metrics:
+        if m.verdict == CHANGED:
+            if m.first_step is None:
+                return f"metric {m.name}: {m.note}"
+            text = (f"{m.name} at step {m.first_step}: {m.golden:.9g} -> {m.new:.9g} "
+                    f"(rel {short(m.rel_diff)}, allowed {short(m.allowed)})")
+            return text + (f"; {m.note}" if m.note else "")
+    changed = [t.name for t in cmp.tensors if t.verdict == CHANGED]
+    if changed:
+        return "state: " + join_names(changed, 4)
+    for m in cmp.metrics:
+        if m.verdict == CLOSE:
+            return f"{m.name} first differs at step {m.first_step} (within tolerance)"
+    return ""
+
+
+def first_metric_difference(cmp: Comparison, index: int) -> str:
+    """The earliest differing metric step between run 1 and run `index` of a repeated test."""
+    off = [m for m in cmp.metrics if m.verdict != IDENTICAL]
+    if not off:
+        return ""
+    # the earliest step over all metrics; metrics missing a step or missing altogether come last
+    m = min(off, key=lambda m: (m.first_step is None, m.first_step or 0, m.name))
+    if m.first_step is None:
+        extra = m.note or ", ".join(filter(None, [
+            f"steps {m.missing_steps[:5]} missing" if m.missing_steps else "",
+            f"steps {m.added_steps[:5]} added" if m.added_steps else ""]))
+        return f"metric {m.name}: {extra}"
+    return f"metric {m.name} at step {m.first_step}: {fmt(m.golden)} in run 1, {fmt(m.new)} in run {index}"
+
+
+def first_tensor_difference(cmp: Comparison) -> str:
+    """The first differing state entry of a repeated test, and how many more differ."""
+    off = [t for t in cmp.tensors if t.verdict != IDENTICAL]
+    if not off:
+        return ""
+    t = off[0]
+    how = ", ".join(t.reasons) or "checksum"
+    if t.max_abs == t.max_abs:  # not NaN
+        how += f", max abs diff {short(t.max_abs)}"
+    more = f" (and {len(off) - 1} more)" if len(off) > 1 else ""
+    return f"state entry {t.name}: {how}{more}"

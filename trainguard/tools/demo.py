@@ -12,10 +12,11 @@ from __future__ import annotations
 import os
 import shutil
 import subprocess
-import sys
 import tempfile
 import textwrap
 from pathlib import Path
+
+from . import pytest_runs
 
 BAKERY_MODEL = '''\
 """The Larkspur Lane bakery (invented): predict a dough's proofing time.
@@ -148,12 +149,11 @@ def _pytest(folder: Path, *args: str) -> subprocess.CompletedProcess[str]:
     env = dict(os.environ)
     # Load exactly this trainguard (also when run from a source checkout) and no other plugins.
     env["PYTEST_DISABLE_PLUGIN_AUTOLOAD"] = "1"
-    package_parent = str(Path(__file__).resolve().parent.parent)
+    package_parent = str(Path(__file__).resolve().parents[2])
     env["PYTHONPATH"] = os.pathsep.join([package_parent] + [p for p in [env.get("PYTHONPATH")] if p])
     env.pop("CI", None)
-    cmd = [sys.executable, "-m", "pytest", "-p", "trainguard.plugin", "-p", "no:cacheprovider", "-q",
-           "-o", "console_output_style=classic", *args]
-    return subprocess.run(cmd, cwd=folder, env=env, capture_output=True, text=True)
+    cmd = pytest_runs.pytest_argv("-o", "console_output_style=classic", *args, plugin="trainguard.skins.plugin")
+    return pytest_runs.run(cmd, folder, env)
 
 
 def _say(text: str = "") -> None:
@@ -162,14 +162,6 @@ def _say(text: str = "") -> None:
 
 def _indent(text: str) -> str:
     return textwrap.indent(text.rstrip(), "    ")
-
-
-def _failed_tests(output: str) -> set[str]:
-    names = set()
-    for line in output.splitlines():
-        if line.startswith("FAILED "):
-            names.add(line.split("::", 1)[-1].split(" ", 1)[0])
-    return names
 
 
 def run_demo(keep: str | None = None) -> int:
@@ -195,14 +187,14 @@ def _run(folder: Path) -> int:
 
     _say("\n[1/3] bless the goldens:  pytest --trainguard-bless --trainguard-reason 'first goldens'")
     first = _pytest(folder, "--trainguard-bless", "--trainguard-reason", "first goldens")
-    _say(_indent(_tail(first.stdout, "trainguard")))
+    _say(_indent(pytest_runs.from_section(first.stdout, "trainguard")))
     if first.returncode != 0:
         _say("demo failed: the bless run did not pass:\n" + _indent(first.stdout + first.stderr))
         return 1
 
     _say("\n[2/3] check against them:  pytest")
     second = _pytest(folder)
-    _say(_indent(_tail(second.stdout, "trainguard")))
+    _say(_indent(pytest_runs.from_section(second.stdout, "trainguard")))
     if second.returncode != 0:
         _say("demo failed: the unchanged suite did not match its goldens:\n" + _indent(second.stdout))
         return 1
@@ -211,8 +203,8 @@ def _run(folder: Path) -> int:
     _say("      decoupled weight decay. Four tests are untouched; two must fail with a report:  pytest")
     _write_suite(folder, momentum=0.91, decay="decoupled")
     third = _pytest(folder)
-    _say(_indent(_tail(third.stdout, "FAILURES")))
-    failed = _failed_tests(third.stdout)
+    _say(_indent(pytest_runs.from_section(third.stdout, "FAILURES")))
+    failed = pytest_runs.failed_tests(third.stdout)
     if third.returncode == 1 and failed == set(EXPECTED_FAILURES):
         _say("\ndemo finished as expected: the two behaviour changes were caught, the four unaffected tests passed.")
         _say("If such a change were intended, you would re-bless with the command each report ends with.")
@@ -220,13 +212,3 @@ def _run(folder: Path) -> int:
     _say(f"\ndemo did NOT behave as expected: failed tests {sorted(failed)}, expected {sorted(EXPECTED_FAILURES)}")
     _say(_indent(third.stdout + third.stderr))
     return 1
-
-
-def _tail(output: str, section: str) -> str:
-    """The output from the `== section ==` separator line on."""
-    lines = output.splitlines()
-    for i, line in enumerate(lines):
-        if line.startswith("=") and f" {section} " in line:
-            return "\n".join(lines[i:])
-    return output
-

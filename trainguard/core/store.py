@@ -1,0 +1,400 @@
+"""`GoldenStore`: the one way to read, write, find, remove or upgrade golden folders.
+
+A store is a folder of goldens (the golden dir, a results folder, bisect's frozen reference,
+calibrate's scratch folder) together with what every access to it must respect: its root
+(no symbolic link between the root and a golden, nothing outside it), the size limit of a
+golden file, and whether it may be written at all. Layouts, encodings and checks of single
+files are `golden_format`'s; writing sets of files atomically is `atomic`'s.
+
+Guarantees (README, "Reliability and security"):
+
+- a write holds the folder's exclusive lock and switches all files of the golden at once
+  (commit record), so a reader sees the complete old or the complete new set;
+- a read holds a shared lock, verifies every file and checks that all share one run id;
+- nothing on the read path uses pickle or eval, and reads never write.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+import uuid
+from pathlib import Path
+from typing import Any, Iterable
+
+from . import golden_format as fmt
+from .atomic import (COMMIT_FILE, LOCK_FILE, READ_LOCK_TIMEOUT, TEMP_PREFIX, WRITE_LOCK_TIMEOUT, FileSet,
+                     check_confined, folder_lock, short_error)
+from .errors import GoldenCorruptError, GoldenMissingError, UsageError
+from .fixes import FixCommands, current
+from .paths import golden_folder
+from .records import MetricSeries, Run, TensorRecord, TraceEntry
+
+#: Reads of a folder whose files come from different writes are retried this often.
+_READ_ATTEMPTS = 8
+#: Entries a golden folder may hold that belong to trainguard (prune removes exactly these).
+GOLDEN_ENTRIES = (*fmt.KINDS, COMMIT_FILE, LOCK_FILE)
+
+
+class GoldenStore:
+    """A folder of goldens and the rules every access to it follows.
+
+    Parameters
+    ----------
+    root : path
+        The folder that holds the goldens; golden folders lie below it (`folder(nodeid)`).
+    max_bytes : int
+        Golden files larger than this are refused before loading (ini `trainguard_max_file_mib`).
+    read_only : bool
+        Refuse every write (results being adopted, a reference being compared with).
+    commands : FixCommands, optional
+        The commands error messages quote (the skins pass pytest's); words only otherwise.
+
+    Examples
+    --------
+    >>> store = GoldenStore("golden")                                  # doctest: +SKIP
+    >>> run = store.read(store.folder("tests/test_bakery.py::test_sgd"))  # doctest: +SKIP
+    """
+
+    def __init__(self, root: str | os.PathLike[str], max_bytes: int = fmt.DEFAULT_MAX_FILE_BYTES,
+                 read_only: bool = False, commands: FixCommands | None = None) -> None:
+        self.root = Path(root)
+        self.max_bytes = max_bytes
+        self.read_only = read_only
+        self.commands: FixCommands = commands or current()
+
+    def __repr__(self) -> str:
+        return f"GoldenStore({str(self.root)!r}, max_bytes={self.max_bytes}, read_only={self.read_only})"
+
+    # -- where ---------------------------------------------------------------------
+    def folder(self, nodeid: str) -> Path:
+        """The golden folder of a test (see `paths.golden_relpath`: injective, stable, confined)."""
+        return golden_folder(self.root, nodeid)
+
+    def exists(self, folder: str | os.PathLike[str]) -> bool:
+        """Whether `folder` holds a golden (or the commit record of one being written)."""
+        return exists(folder)
+
+    def find(self) -> list[Path]:
+        """Every golden folder below the root (folders holding a golden file), sorted; links not followed."""
+        found = []
+        for dirpath, dirnames, filenames in os.walk(self.root, followlinks=False):
+            dirnames.sort()
+            if fmt.METRICS_FILE in filenames or fmt.STATE_FILE in filenames or COMMIT_FILE in filenames:
+                found.append(Path(dirpath))
+        return sorted(found)
+
+    # -- reading -------------------------------------------------------------------
+    def read(self, folder: str | os.PathLike[str]) -> Run:
+        """Read a golden folder as one consistent set. Never writes anything.
+
+        Raises
+        ------
+        GoldenMissingError
+            No golden in `folder`.
+        GoldenCorruptError, GoldenVersionError
+            A file is damaged, edited, too large, of an unknown format, or the set is mixed;
+            the message names the file.
+        """
+        folder = Path(folder)
+        check_confined(folder, self.root)
+        if not exists(folder):
+            raise GoldenMissingError(folder, "no golden here")
+        if not folder.is_dir():
+            raise GoldenCorruptError(folder, "is not a folder")
+        ids: list[Any] = []
+        files_of = FileSet(folder, fmt.KINDS)
+        try:
+            lock = folder_lock(folder, exclusive=False, timeout=READ_LOCK_TIMEOUT)
+            lock.__enter__()
+        except OSError as exc:
+            raise GoldenCorruptError(folder, f"cannot be opened ({short_error(exc)})") from None
+        try:
+            for attempt in range(_READ_ATTEMPTS):
+                files = files_of.resolve()
+                for kind in (fmt.METRICS_FILE, fmt.STATE_FILE):
+                    if kind not in files:
+                        raise GoldenCorruptError(folder / kind, "is missing while its sibling golden file exists")
+                reads = {kind: self._read_file(path, kind) for kind, path in files.items()}
+                ids = [(kind, r.run_id) for kind, r in reads.items()]
+                if len({r for _, r in ids}) == 1:
+                    return _run_from(files, reads)
+                time.sleep(0.005 * (attempt + 1))  # a writer without a lock (Windows) may be mid-switch
+        finally:
+            lock.__exit__(None, None, None)
+        described = ", ".join(f"{k}: {r or 'none (format 1)'}" for k, r in ids)
+        raise GoldenCorruptError(folder, f"holds files from different writes (run ids {described}); the set is mixed",
+                                 "restore the folder from version control, or re-bless the test")
+
+    def read_file(self, path: str | os.PathLike[str], kind: str | None = None) -> tuple[Any, Any]:
+        """One golden file on its own (for `trainguard show FILE`): its records and metadata.
+
+        `kind` (default: the file's name) says how to read it: `metrics.parquet` gives metrics
+        by name, `state.parquet` records by name, `trace.parquet` the trace entries.
+        """
+        path = Path(path)
+        kind = kind or (path.name if path.name in fmt.KINDS else fmt.METRICS_FILE)
+        got = self._read_file(path, kind)
+        if kind == fmt.STATE_FILE:
+            return fmt.tensors_from_table(path, got.table), got.meta
+        if kind == fmt.TRACE_FILE:
+            return fmt.trace_from_table(path, got.table), got.meta
+        return fmt.metrics_from_table(path, got.table), got.meta
+
+    def _read_file(self, path: Path, kind: str) -> fmt.FileRead:
+        return fmt.read_file(path, kind, self.max_bytes, self.commands)
+
+    def format_versions(self, folder: Path) -> set[int]:
+        """The format versions of a golden's files (one value for a golden trainguard wrote)."""
+        return {self._read_file(p, k).version for k, p in FileSet(folder, fmt.KINDS).resolve().items()}
+
+    # -- writing -------------------------------------------------------------------
+    def _writable(self, folder: Path) -> None:
+        self._refuse_if_read_only(folder)
+        check_confined(folder, self.root)
+
+    def _refuse_if_read_only(self, path: Path) -> None:
+        if self.read_only:
+            raise UsageError(f"{path}: the golden store {self.root} is read-only here; nothing was written")
+
+    def write(self, folder: str | os.PathLike[str], run: Run) -> None:
+        """Write `run` as the golden in `folder`: all files or none, as one set.
+
+        Holds the folder's exclusive lock throughout; completes an interrupted earlier write and
+        removes leftover temp files first (only under the lock, so never another writer's).
+        """
+        folder = Path(folder)
+        self._writable(folder)
+        folder.mkdir(parents=True, exist_ok=True)
+        check_confined(folder, self.root)
+        for kind in fmt.KINDS:
+            path = folder / kind
+            if path.exists() and not path.is_symlink() and not path.is_file():
+                raise GoldenCorruptError(path, "is not a regular file (a folder?) where trainguard keeps a golden file",
+                                         "remove it, then bless again")
+        meta_json = fmt.encode_meta(run.meta)
+        run_id = uuid.uuid4().hex
+        tables = {kind: fmt.seal(kind, table, meta_json, run_id) for kind, table in fmt.tables_of(run).items()}
+        self._switch(folder, tables, run_id)
+
+    def _switch(self, folder: Path, tables: dict[str, Any], run_id: str) -> None:
+        files = FileSet(folder, fmt.KINDS)
+        with folder_lock(folder, exclusive=True, timeout=WRITE_LOCK_TIMEOUT):
+            files.recover()
+            files.clean()
+            files.write({kind: fmt.parquet_writer(kind, table) for kind, table in tables.items()}, run_id)
+
+    def remove(self, folder: str | os.PathLike[str]) -> bool:
+        """Delete one golden folder's files (links are unlinked, never followed), then the empty folders
+        up to the root. A folder that also holds subfolders keeps them and everything but its golden files.
+        False (and nothing removed) when a symbolic link lies on the way from the root."""
+        folder = Path(folder)
+        self._refuse_if_read_only(folder)
+        if not _inside_without_links(folder, self.root):
+            return False
+        entries = list(os.scandir(folder))
+        nested = any(e.is_dir(follow_symlinks=False) for e in entries)
+        for entry in entries:
+            if entry.is_dir(follow_symlinks=False):
+                continue
+            if nested and entry.name not in GOLDEN_ENTRIES and not entry.name.startswith(TEMP_PREFIX):
+                continue
+            os.unlink(entry.path)
+        current = folder
+        while current != self.root:
+            try:
+                current.rmdir()  # only when empty
+            except OSError:
+                break
+            current = current.parent
+        return True
+
+    def import_files(self, files: Iterable[tuple[str, bytes]]) -> int:
+        """Copy golden files in as they are (bisect's frozen reference): (path relative to the root, bytes).
+
+        Only plain relative paths below the root are taken; nothing is followed or overwritten
+        through a link. Returns how many files were written.
+        """
+        self._refuse_if_read_only(self.root)
+        count = 0
+        root = self.root.resolve()
+        for rel, data in files:
+            parts = Path(rel).parts
+            if not parts or rel.startswith("/") or ".." in parts:
+                continue
+            target = root.joinpath(*parts)
+            check_confined(target.parent, root)
+            target.parent.mkdir(parents=True, exist_ok=True)
+            check_confined(target.parent, root)
+            if target.is_symlink():
+                target.unlink()
+            target.write_bytes(data)
+            count += 1
+        return count
+
+    # -- upgrading -----------------------------------------------------------------
+    def upgrade(self) -> list[tuple[Path, str]]:
+        """Convert every golden below the root to the current format, in place.
+
+        Reads (and so validates) every golden first and writes nothing if any is unusable.
+        Then each older folder is rewritten as one set under its lock, with the same data and
+        the same `trainguard.meta` bytes, plus a run id, the writer version and the digest.
+        Folders already at the current format are not touched, so a second run changes nothing.
+        Returns (folder, "upgraded from format N" | "current") per golden folder.
+        """
+        if not self.root.is_dir():
+            raise GoldenMissingError(self.root, "no such golden folder")
+        folders = self.find()
+        versions = {}
+        for folder in folders:
+            self.read(folder)
+            versions[folder] = self.format_versions(folder)
+        out = []
+        for folder in folders:
+            if versions[folder] == {fmt.FORMAT_VERSION}:
+                out.append((folder, "current"))
+                continue
+            self._writable(folder)
+            files = FileSet(folder, fmt.KINDS)
+            with folder_lock(folder, exclusive=True, timeout=WRITE_LOCK_TIMEOUT):
+                files.recover()
+                files.clean()
+                old = sorted(self.format_versions(folder))
+                if old == [fmt.FORMAT_VERSION]:  # another process upgraded it meanwhile
+                    out.append((folder, "current"))
+                    continue
+                run_id = uuid.uuid4().hex
+                tables = {kind: self._upgraded(path, kind, run_id) for kind, path in files.resolve().items()}
+                files.write({kind: fmt.parquet_writer(kind, table) for kind, table in tables.items()}, run_id)
+            out.append((folder, f"upgraded from format {', '.join(map(str, old))}"))
+        return out
+
+    def _upgraded(self, path: Path, kind: str, run_id: str) -> Any:
+        import pyarrow as pa
+
+        got = self._read_file(path, kind)
+        schema = fmt.schema_of(kind)
+        raw_meta = fmt.pq_metadata(path)
+        columns = [got.table.column(f.name) if f.name in got.table.column_names else pa.nulls(got.table.num_rows, f.type)
+                   for f in schema]
+        table = pa.Table.from_arrays(columns, schema=schema)
+        return fmt.seal(kind, table, raw_meta.get(fmt.KEY_META, b"{}"), run_id)
+
+
+def _run_from(files: dict[str, Path], reads: dict[str, fmt.FileRead]) -> Run:
+    metrics = fmt.metrics_from_table(files[fmt.METRICS_FILE], reads[fmt.METRICS_FILE].table)
+    tensors = fmt.tensors_from_table(files[fmt.STATE_FILE], reads[fmt.STATE_FILE].table)
+    trace = (fmt.trace_from_table(files[fmt.TRACE_FILE], reads[fmt.TRACE_FILE].table)
+             if fmt.TRACE_FILE in reads else None)
+    return Run(metrics=metrics, tensors=tensors, meta=reads[fmt.METRICS_FILE].meta, trace=trace)
+
+
+def _inside_without_links(folder: Path, root: Path) -> bool:
+    """`folder` lies below `root`, and neither it nor any folder between them is a symbolic link."""
+    try:
+        rel = folder.relative_to(root)
+    except ValueError:
+        return False
+    if not rel.parts or ".." in rel.parts:
+        return False
+    current = root
+    for part in rel.parts:
+        current = current / part
+        if current.is_symlink() or not current.is_dir():
+            return False
+    return True
+
+
+# -- one-call forms (the public API's read_run / write_run) ------------------------------------
+
+
+def exists(folder: str | os.PathLike[str]) -> bool:
+    """Whether `folder` holds a golden (or the commit record of one being written)."""
+    folder = Path(folder)
+    return any(os.path.lexists(folder / name) for name in (fmt.METRICS_FILE, fmt.STATE_FILE, COMMIT_FILE))
+
+
+def _store_for(folder: Path, root: str | os.PathLike[str] | None, max_bytes: int) -> GoldenStore:
+    return GoldenStore(root if root is not None else folder, max_bytes=max_bytes)
+
+
+def read_run(folder: str | os.PathLike[str], max_bytes: int = fmt.DEFAULT_MAX_FILE_BYTES,
+             root: str | os.PathLike[str] | None = None) -> Run:
+    """Read a golden (or result) folder as one consistent set. Never writes anything.
+
+    Parameters
+    ----------
+    folder : path
+        The golden folder (the one holding `metrics.parquet` and `state.parquet`).
+    max_bytes : int
+        Larger golden files are refused before loading (default 512 MiB).
+    root : path, optional
+        The golden dir: a symbolic link anywhere between it and `folder` is refused.
+
+    Raises
+    ------
+    GoldenMissingError, GoldenVersionError, GoldenCorruptError
+        Each names the file and, where there is one, the fix.
+
+    Examples
+    --------
+    >>> run = read_run("golden/tests/test_depot.py/test_depot_sgd")   # doctest: +SKIP
+    >>> run.metrics["loss"].values[-1], run.meta["reason"]             # doctest: +SKIP
+    """
+    folder = Path(folder)
+    return _store_for(folder, root, max_bytes).read(folder)
+
+
+def write_run(folder: str | os.PathLike[str], run: Run, root: str | os.PathLike[str] | None = None) -> None:
+    """Write `run` as a golden (or result) folder: all files or none, as one set.
+
+    Parameters
+    ----------
+    folder : path
+        The golden folder; created if missing.
+    run : Run
+        What to store; `run.meta` becomes the files' `trainguard.meta`.
+    root : path, optional
+        The golden dir `folder` must stay inside (no symbolic link between them).
+
+    Raises
+    ------
+    GoldenError
+        The folder is a link, lies outside `root`, or holds something that is not a golden file.
+
+    Examples
+    --------
+    >>> write_run("golden/demo", Run(metrics={"loss": MetricSeries([0, 1], [0.9, 0.7])}))  # doctest: +SKIP
+    """
+    folder = Path(folder)
+    _store_for(folder, root, fmt.DEFAULT_MAX_FILE_BYTES).write(folder, run)
+
+
+def find_goldens(root: str | os.PathLike[str]) -> list[Path]:
+    """Every golden folder below `root` (folders holding a golden file), sorted, symlinks not followed."""
+    return GoldenStore(root).find()
+
+
+def upgrade_goldens(root: str | os.PathLike[str], max_bytes: int = fmt.DEFAULT_MAX_FILE_BYTES) -> list[tuple[Path, str]]:
+    """`GoldenStore(root, max_bytes).upgrade()`: every golden below `root` to the current format."""
+    return GoldenStore(root, max_bytes=max_bytes).upgrade()
+
+
+def read_metrics(path: str | os.PathLike[str], max_bytes: int = fmt.DEFAULT_MAX_FILE_BYTES) -> tuple[dict[str, MetricSeries], Any]:
+    """Read one `metrics.parquet`: the series by metric name, and the file's metadata."""
+    path = Path(path)
+    got = fmt.read_file(path, fmt.METRICS_FILE, max_bytes)
+    return fmt.metrics_from_table(path, got.table), got.meta
+
+
+def read_state(path: str | os.PathLike[str], max_bytes: int = fmt.DEFAULT_MAX_FILE_BYTES) -> tuple[dict[str, TensorRecord], Any]:
+    """Read one `state.parquet`: the records by tensor name, and the file's metadata."""
+    path = Path(path)
+    got = fmt.read_file(path, fmt.STATE_FILE, max_bytes)
+    return fmt.tensors_from_table(path, got.table), got.meta
+
+
+def read_trace(path: str | os.PathLike[str], max_bytes: int = fmt.DEFAULT_MAX_FILE_BYTES) -> list[TraceEntry]:
+    """Read one `trace.parquet` into entries in recording order."""
+    path = Path(path)
+    return fmt.trace_from_table(path, fmt.read_file(path, fmt.TRACE_FILE, max_bytes).table)

@@ -1,0 +1,184 @@
+"""Tolerance rules: which differences count as a change.
+
+The rule is NumPy's `isclose`: |new - golden| <= atol + rtol * |golden| (asymmetric: the
+golden is the reference). Two extensions matter for training: identical non-finite
+values (NaN with NaN, +Inf with +Inf) match, and a non-finite value against a finite one
+never does, whatever the tolerance, so a run that diverges to NaN is always a change.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, Mapping
+
+import numpy as np
+
+from .checksum import sketch_distance
+from .errors import UsageError
+from .records import Summarized
+from .verdicts import CHANGED, CLOSE, IDENTICAL
+
+#: Defaults: the documented defaults of `numpy.isclose` (NumPy reference, numpy.isclose:
+#: rtol=1e-05, atol=1e-08). Chosen so that the rule and its defaults have one public source.
+DEFAULT_RTOL = 1e-5
+DEFAULT_ATOL = 1e-8
+
+
+@dataclass(frozen=True)
+class Tolerance:
+    """One pair of tolerances for the rule |new - golden| <= atol + rtol * |golden|."""
+
+    rtol: float = DEFAULT_RTOL
+    atol: float = DEFAULT_ATOL
+
+    def describe(self) -> str:
+        """As reports print it: `rtol=1e-05, atol=1e-08`."""
+        return f"rtol={self.rtol:g}, atol={self.atol:g}"
+
+
+@dataclass(frozen=True)
+class Policy:
+    """The tolerances in force for one guarded test."""
+
+    default: Tolerance = Tolerance()
+    exact: bool = False
+    metrics: Mapping[str, Tolerance] = None  # type: ignore[assignment]
+
+    def for_metric(self, name: str) -> Tolerance:
+        if self.metrics and name in self.metrics:
+            return self.metrics[name]
+        return self.default
+
+    def to_json(self) -> dict[str, Any]:
+        """The form goldens record as metadata `tolerances` (and `calibrated` takes, without `exact`)."""
+        return {
+            "rtol": self.default.rtol,
+            "atol": self.default.atol,
+            "exact": self.exact,
+            "metrics": {k: {"rtol": v.rtol, "atol": v.atol} for k, v in (self.metrics or {}).items()},
+        }
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any] | None, fallback: Tolerance = Tolerance()) -> Policy:
+        """Read back `to_json`'s form; missing parts take `fallback` (entries that are not numbers are skipped).
+
+        >>> Policy.from_json({"rtol": 1e-4, "metrics": {"loss": {"atol": 1e-6}}}).for_metric("loss")
+        Tolerance(rtol=0.0001, atol=1e-06)
+        """
+        data = data or {}
+        default = Tolerance(_number(data.get("rtol"), fallback.rtol), _number(data.get("atol"), fallback.atol))
+        metrics = {}
+        raw = data.get("metrics")
+        for name, spec in (raw.items() if isinstance(raw, Mapping) else ()):
+            if isinstance(spec, Mapping):
+                metrics[str(name)] = Tolerance(_number(spec.get("rtol"), default.rtol),
+                                               _number(spec.get("atol"), default.atol))
+        return cls(default=default, exact=data.get("exact") is True, metrics=metrics)
+
+    def with_default(self, default: Tolerance, keep_metrics: bool = True) -> Policy:
+        """The same policy with another overall tolerance (per-metric ones dropped unless kept)."""
+        return Policy(default=default, exact=self.exact, metrics=self.metrics if keep_metrics else {})
+
+
+def _number(value: Any, fallback: float) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        return fallback
+    return float(value)
+
+
+def check_tolerance_value(name: str, value: Any, where: str) -> float:
+    """A tolerance must be a finite, non-negative real number."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise UsageError(f"{where}: {name} must be a number, got {value!r}")
+    value = float(value)
+    if not math.isfinite(value) or value < 0:
+        raise UsageError(f"{where}: {name} must be finite and >= 0, got {value!r}")
+    return value
+
+
+def bitwise_equal(golden: np.ndarray, new: np.ndarray) -> np.ndarray:
+    """Elementwise identity of float64 bit patterns (so -0.0 != 0.0 and NaN payloads count)."""
+    g = np.ascontiguousarray(golden, dtype=np.float64).view(np.uint64)
+    n = np.ascontiguousarray(new, dtype=np.float64).view(np.uint64)
+    return g == n
+
+
+def within(golden: np.ndarray, new: np.ndarray, tol: Tolerance) -> np.ndarray:
+    """Elementwise verdict of the tolerance rule, with trainguard's non-finite handling."""
+    golden = np.asarray(golden, dtype=np.float64)
+    new = np.asarray(new, dtype=np.float64)
+    with np.errstate(invalid="ignore", over="ignore"):
+        ok = np.abs(new - golden) <= tol.atol + tol.rtol * np.abs(golden)
+    # Non-finite handling: only identical non-finite values match.
+    finite_g = np.isfinite(golden)
+    finite_n = np.isfinite(new)
+    both_nan = np.isnan(golden) & np.isnan(new)
+    same_inf = ~finite_g & ~finite_n & (golden == new)
+    return np.where(finite_g & finite_n, ok, both_nan | same_inf)
+
+
+def norm_allowed(numel: int, golden_l2: float, tol: Tolerance) -> float:
+    """Largest allowed L2 distance for a whole tensor: the norm-wise analogue of the elementwise rule.
+
+    If every element satisfies |d_i| <= atol + rtol |g_i|, then by the triangle inequality
+    ||d||_2 <= atol * sqrt(n) + rtol * ||g||_2. Used where only sketches are stored.
+    """
+    return tol.atol * math.sqrt(max(numel, 0)) + tol.rtol * (golden_l2 if math.isfinite(golden_l2) else 0.0)
+
+
+@dataclass
+class Judgement:
+    """The verdict on one described tensor (state or trace entry) and what it was based on."""
+
+    verdict: str
+    reasons: list[str] = field(default_factory=list)  # "dtype float32 -> float64", "shape ...", "checksum"
+    basis: str = ""  # "values", "statistics" or "statistics+sketch"; empty when bits or structure decided
+    golden: np.ndarray | None = None  # the numbers compared elementwise (values, or the five statistics)
+    new: np.ndarray | None = None
+    ok: np.ndarray | None = None  # elementwise verdict over them
+    sketch_distance: float | None = None  # estimated L2 distance, when only sketches were stored
+    sketch_allowed: float | None = None
+
+    @property
+    def elements_off(self) -> int:
+        """Compared numbers outside tolerance (a sketch distance over its allowance counts as one)."""
+        off = 0 if self.ok is None else int(self.ok.size - np.count_nonzero(self.ok))
+        if self.sketch_distance is not None and not self.sketch_distance <= (self.sketch_allowed or 0.0):
+            off += 1
+        return off
+
+
+def judge(golden: Summarized, new: Summarized, tol: Tolerance, exact: bool = False) -> Judgement:
+    """Climb the one ladder every state and trace entry is judged by.
+
+    1. dtype or shape differ: changed. 2. same SHA-256: identical. 3. the stored values when
+    both sides kept them, else the statistics (min, max, mean, L2 norm, non-finite count),
+    each under the elementwise rule (bits only with `exact`); where both kept a count-sketch,
+    also the estimated L2 distance against `norm_allowed`. Any number outside: changed.
+    """
+    reasons = []
+    if golden.dtype != new.dtype:
+        reasons.append(f"dtype {golden.dtype} -> {new.dtype}")
+    if golden.shape != new.shape:
+        reasons.append(f"shape {list(golden.shape)} -> {list(new.shape)}")
+    if reasons:
+        return Judgement(CHANGED, reasons)
+    if golden.sha256 == new.sha256:
+        return Judgement(IDENTICAL)
+    out = Judgement(CLOSE, ["checksum"])
+    g_values, n_values = getattr(golden, "values", None), getattr(new, "values", None)
+    if g_values is not None and n_values is not None and g_values.shape == n_values.shape:
+        out.golden, out.new, out.basis = g_values, n_values, "values"
+    else:
+        out.golden, out.new, out.basis = golden.stats.as_array(), new.stats.as_array(), "statistics"
+    same = bitwise_equal(out.golden, out.new)
+    out.ok = same if exact else (same | within(out.golden, out.new, tol))
+    if out.basis == "statistics" and golden.sketch is not None and new.sketch is not None \
+            and golden.sketch.shape == new.sketch.shape:
+        out.basis = "statistics+sketch"
+        out.sketch_distance = sketch_distance(golden.sketch, new.sketch)
+        out.sketch_allowed = norm_allowed(golden.numel, golden.l2, tol)
+    if exact or out.elements_off:
+        out.verdict = CHANGED
+    return out

@@ -1,0 +1,185 @@
+"""`GuardPlugin`: the session's state and the hooks that turn a guarded test's verdict into its outcome.
+
+A thin skin: it reads pytest's configuration into a `core.guard.GuardRequest`, lets the
+core settle it, and fails the test with the rendered message. Verdicts travel to the
+controller in the call report's `user_properties` (the same path with and without
+pytest-xdist) and are counted at the end.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Iterator, NoReturn
+
+import pytest
+
+from ...core.project import ci_enabled, ci_value
+from ...tools.pytest_runs import PytestCommands
+
+if TYPE_CHECKING:
+    from ...core.capture import Trajectory
+    from ...core.records import Run
+    from ...core.settings import GuardSettings
+    from ...core.store import GoldenStore
+
+MARKER = "trainguard"
+FIXTURE = "trajectory"
+
+_PENDING_KEY = pytest.StashKey["Pending"]()
+_NODEID_KEY = pytest.StashKey[str]()
+
+
+class Pending:
+    """What the fixture hands to the call-phase hook for one test."""
+
+    def __init__(self, trajectory: Trajectory, settings: GuardSettings, fingerprint: dict[str, Any]) -> None:
+        self.trajectory = trajectory
+        self.settings = settings
+        self.fingerprint = fingerprint
+        self.repeats: list[Run] = []  # Runs of the repeats (--trainguard-repeat), after the first run
+        self.alerts: list[str] = []  # torch's deterministic-mode warnings during the runs
+
+    @staticmethod
+    def attach(item: pytest.Item, pending: Pending) -> None:
+        item.stash[_PENDING_KEY] = pending
+
+    @staticmethod
+    def of(item: pytest.Item) -> Pending | None:
+        return item.stash.get(_PENDING_KEY, None)
+
+
+def guard_nodeid(item: pytest.Item) -> str:
+    """The node id goldens, shards and reports use: the id as collected."""
+    return item.stash.get(_NODEID_KEY, item.nodeid)
+
+
+def is_guarded(item: pytest.Item) -> bool:
+    return item.get_closest_marker(MARKER) is not None or FIXTURE in getattr(item, "fixturenames", ())
+
+
+class GuardPlugin:
+    """Per-session state (where goldens live, every verdict for the summary) and the guard's hooks."""
+
+    NAME = "trainguard-guard"
+
+    def __init__(self, config: pytest.Config) -> None:
+        self.config = config
+        self.rows: list[dict[str, Any]] = []  # one per guarded test, gathered from reports (xdist-safe)
+        self.report_path: Path | None = None
+
+    @classmethod
+    def of(cls, config: pytest.Config) -> GuardPlugin | None:
+        plugin = config.pluginmanager.get_plugin(cls.NAME)
+        return plugin if isinstance(plugin, cls) else None
+
+    @staticmethod
+    def fail(message: str) -> NoReturn:
+        __tracebackhide__ = True
+        pytest.fail(message, pytrace=False)
+
+    # -- configuration ---------------------------------------------------------------
+    @property
+    def rootpath(self) -> Path:
+        return Path(self.config.rootpath)
+
+    def golden_dir(self) -> Path:
+        option = self.config.getoption("--trainguard-golden-dir")
+        if option:
+            return self.resolve(option)
+        return self.resolve(self.config.getini("trainguard_golden_dir") or "golden", base=self.rootpath)
+
+    def resolve(self, raw: str, base: Path | None = None) -> Path:
+        """Command-line paths are relative to the invocation folder, ini paths to rootdir."""
+        path = Path(raw)
+        if path.is_absolute():
+            return path
+        return (base if base is not None else Path(self.config.invocation_params.dir)) / path
+
+    @property
+    def commands(self) -> PytestCommands:
+        return PytestCommands(self.config.getoption("--trainguard-golden-dir"))
+
+    def bless_command(self, nodeid: str) -> str:
+        return self.commands.bless(nodeid)
+
+    def store(self, root: Path) -> GoldenStore:
+        from ...core.golden_format import max_bytes_from_ini
+        from ...core.store import GoldenStore
+
+        return GoldenStore(root, max_bytes=max_bytes_from_ini(self.config.getini("trainguard_max_file_mib")),
+                           commands=self.commands)
+
+    # -- hooks -----------------------------------------------------------------------
+    def pytest_itemcollected(self, item: pytest.Item) -> None:
+        # Remember the node id as collected: with --dist loadgroup, pytest-xdist (on pytest < 9.2)
+        # appends "@<group>" to the node ids of xdist_group tests in its collection hook, which must
+        # change neither a test's golden folder nor its shard.
+        item.stash[_NODEID_KEY] = item.nodeid
+
+    @pytest.hookimpl(wrapper=True, tryfirst=True)
+    def pytest_runtest_call(self, item: pytest.Item) -> Iterator[None]:
+        marker = item.get_closest_marker(MARKER)
+        if marker is not None and FIXTURE not in getattr(item, "fixturenames", ()):
+            self.fail(f"{item.nodeid} is marked @pytest.mark.trainguard but does not use the 'trajectory' fixture; "
+                      "add a 'trajectory' argument to the test and log to it")
+        try:
+            result = yield
+        except RuntimeError as exc:
+            from ...core.determinism import is_nondeterminism_error
+
+            if FIXTURE in getattr(item, "fixturenames", ()) and is_nondeterminism_error(exc):
+                self.fail(f"{item.nodeid}: torch raised in deterministic mode, which trainguard turns on for guarded "
+                          f"tests:\n  {str(exc).strip().splitlines()[0]}\n"
+                          "hint: use an op with a deterministic implementation, or accept run-to-run noise with "
+                          "@pytest.mark.trainguard(deterministic='warn') (warns) or deterministic=False, and a tolerance")
+            raise
+        pending = Pending.of(item)
+        if pending is not None:
+            self._finish(item, pending)
+        return result
+
+    def _finish(self, item: pytest.Item, pending: Pending) -> None:
+        __tracebackhide__ = True
+        from ...core.errors import UsageError
+        from ...core.guard import GuardRequest, settle
+        from .repeat import repeat_hints
+
+        nodeid = guard_nodeid(item)
+        pending.trajectory.close()
+        option = self.config.getoption
+        results_dir = option("--trainguard-results")
+        report_dir = option("--trainguard-report")
+        request = GuardRequest(
+            nodeid=nodeid, run=pending.trajectory.to_run(), settings=pending.settings,
+            fingerprint=pending.fingerprint, max_values=pending.trajectory.max_values,
+            golden=self.store(self.golden_dir()), commands=self.commands, bless=option("--trainguard-bless"),
+            reason=option("--trainguard-reason") or "", base=self.rootpath, repeats=tuple(pending.repeats),
+            repeat_hints=tuple(repeat_hints(item, nodeid, pending)) if pending.repeats else (),
+            results=self.store(self.resolve(results_dir)) if results_dir else None,
+            report_dir=self.resolve(report_dir) if report_dir else None,
+            ci=ci_value() if ci_enabled() else None,
+        )
+        try:
+            result, row = settle(request)
+        except UsageError as exc:
+            self.fail(str(exc))
+        item.user_properties.append(("trainguard", row))
+        if result.failed:
+            self.fail(result.message)
+
+    def pytest_runtest_logreport(self, report: pytest.TestReport) -> None:
+        """Gather verdicts from call-phase reports: the same path with and without pytest-xdist."""
+        if report.when != "call":
+            return
+        self.rows.extend(value for key, value in report.user_properties if key == "trainguard" and isinstance(value, dict))
+
+    def pytest_terminal_summary(self, terminalreporter: Any, exitstatus: int, config: pytest.Config) -> None:
+        if not self.rows:
+            return
+        from ...core.summary import summary_lines
+
+        terminalreporter.write_sep("=", "trainguard")
+        for line in summary_lines(self.rows):
+            terminalreporter.write_line(line)
+        if self.report_path is not None:
+            terminalreporter.write_line(f"report: {self.report_path}")
