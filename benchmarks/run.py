@@ -15,7 +15,6 @@ does not see torch's allocations.
 from __future__ import annotations
 
 import argparse
-import hashlib
 import json
 import os
 import platform
@@ -84,11 +83,11 @@ def _snippet(traj=None, watch: bool = False):
 
 
 def _guarded(folder: Path, watch: bool, bless: bool = False) -> str:
-    from trainguard import guard
-    from trainguard.capture import Trajectory
-    from trainguard.determinism import GlobalState, guarded_setup
-    from trainguard.environment import fingerprint
-    from trainguard.tolerance import Policy
+    from trainguard.core import guard
+    from trainguard.core.capture import Trajectory
+    from trainguard.core.determinism import GlobalState, guarded_setup
+    from trainguard.core.environment import fingerprint
+    from trainguard.core.tolerance import Policy
 
     saved = GlobalState.capture()
     try:
@@ -149,8 +148,9 @@ import numpy as np, torch
 mode = {mode!r}
 torch.manual_seed(0)
 model = torch.nn.Sequential(*[torch.nn.Linear(i, o) for o, i in {shapes!r}])
-from trainguard import checksum, golden
-from trainguard.capture import Trajectory
+from trainguard.core import checksum
+from trainguard.core import store as golden
+from trainguard.core.capture import Trajectory
 import tempfile
 Trajectory().state(w=torch.ones(3))  # warm-up: imports, caches of small sizes
 def status(key):
@@ -241,8 +241,8 @@ def bench_size() -> None:
           flush=True)
     import numpy as np
 
-    from trainguard import golden
-    from trainguard.record import MetricSeries, Run
+    from trainguard.core import store as golden
+    from trainguard.core.records import MetricSeries, Run
 
     n = 100_000
     curves = _curves(n)
@@ -273,9 +273,9 @@ def bench_compare(reps: int) -> None:
     print("4. comparing a 1,000,000-step trajectory vs numpy.isclose on the same arrays", flush=True)
     import numpy as np
 
-    from trainguard.comparison import compare_metric
-    from trainguard.record import MetricSeries
-    from trainguard.tolerance import Policy
+    from trainguard.core.comparison import compare_metric
+    from trainguard.core.records import MetricSeries
+    from trainguard.core.tolerance import Policy
 
     n = 1_000_000
     loss = _curves(n)["loss"]

@@ -15,8 +15,8 @@ from typing import Any
 
 import numpy as np
 
-from trainguard.core import store as golden
 from trainguard.core import golden_format
+from trainguard.core import store as golden
 from trainguard.core.records import MetricSeries, Run, TensorRecord, TraceEntry
 
 
@@ -148,9 +148,8 @@ def crash_runs() -> dict[str, Run]:
 def write_forever(folders: list[str], order: str, started: Any, pause: float = 0.0) -> None:
     """Child process: write the runs named in `order` (e.g. "AB") to every folder, round after round."""
     import random
-    import time
-
     import shutil
+    import time
 
     runs = crash_runs()
     rng = random.Random(os.getpid())

@@ -117,8 +117,8 @@ def pytest_in(repo: Path, *args: str) -> subprocess.CompletedProcess[str]:
 @pytest.fixture(scope="module")
 def history(tmp_path_factory) -> dict[str, object]:
     """The 19-commit repository described above; returns its path and the sha of every numbered commit."""
-    from trainguard.core import store as golden
     from trainguard.core import records
+    from trainguard.core import store as golden
 
     repo = tmp_path_factory.mktemp("ropeway") / "repo"
     repo.mkdir()

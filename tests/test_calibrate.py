@@ -23,15 +23,15 @@ from hypothesis import strategies as st
 
 from trainguard.core import paths
 from trainguard.core import store as golden
-from trainguard.tools.calibrate import plan, thread_counts, write_calibration
-from trainguard.tools.calibration import RecordedRun, RunSpec, Setting, analyse, round_up
-from trainguard.skins.cli import main
 from trainguard.core.comparison import compare
-from trainguard.core.verdicts import CHANGED, CLOSE
 from trainguard.core.guard import check
 from trainguard.core.records import MetricSeries, Run, TensorRecord
 from trainguard.core.settings import calibrated_policy
 from trainguard.core.tolerance import DEFAULT_ATOL, DEFAULT_RTOL, Policy, Tolerance
+from trainguard.core.verdicts import CHANGED, CLOSE
+from trainguard.skins.cli import main
+from trainguard.tools.calibrate import plan, thread_counts, write_calibration
+from trainguard.tools.calibration import RecordedRun, RunSpec, Setting, analyse, round_up
 
 # -- synthetic runs ----------------------------------------------------------------------------
 

@@ -28,7 +28,6 @@ from trainguard import (
     read_run,
     write_run,
 )
-from trainguard.core import store as golden_store
 from trainguard.core import golden_format
 from trainguard.core.verdicts import CHANGED, CLOSE, IDENTICAL
 

@@ -14,10 +14,10 @@ import time
 from pathlib import Path
 
 import pytest
-
 from golden_samples import crash_runs, file_tag, which_run, write_forever
-from trainguard.core import store as golden
+
 from trainguard.core import atomic
+from trainguard.core import store as golden
 from trainguard.core.errors import TrainguardError
 
 pytestmark = pytest.mark.skipif(sys.platform == "win32", reason="SIGKILL and flock are POSIX")

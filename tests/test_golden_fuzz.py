@@ -19,12 +19,12 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from golden_samples import make_run, same_run
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from golden_samples import make_run, same_run
-from trainguard.core import store as golden
 from trainguard.core import golden_format
+from trainguard.core import store as golden
 from trainguard.core.errors import TrainguardError
 from trainguard.core.meta import GoldenMeta
 

@@ -12,8 +12,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
-
 from golden_samples import downgrade_to_format_1, file_tag, make_run, rewrite, same_run, snapshot
+
 from trainguard import __version__
 from trainguard.core import atomic, golden_format
 from trainguard.core import store as golden

@@ -27,10 +27,10 @@ import pytest
 import trainguard
 from trainguard.core import paths
 from trainguard.core import store as golden
-from trainguard.skins import cli
 from trainguard.core.comparison import compare
 from trainguard.core.report_files import write_report
 from trainguard.core.tolerance import Policy
+from trainguard.skins import cli
 
 pytestmark = pytest.mark.slow
 

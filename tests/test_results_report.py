@@ -29,10 +29,10 @@ from urllib.parse import unquote
 import pyarrow.parquet as pq
 import pytest
 
-from trainguard.core import store as golden_store
 from trainguard.core import golden_format
-from trainguard.skins.cli import main
+from trainguard.core import store as golden_store
 from trainguard.core.paths import golden_folder
+from trainguard.skins.cli import main
 
 pytestmark = pytest.mark.slow
 

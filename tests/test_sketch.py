@@ -98,8 +98,8 @@ def test_estimator_error_bound_holds_in_the_stated_fraction_of_trials():
 def test_large_state_entry_tolerance_uses_sketch():
     from trainguard.core.capture import Trajectory
     from trainguard.core.comparison import compare
-    from trainguard.core.verdicts import CHANGED, CLOSE
     from trainguard.core.tolerance import Policy
+    from trainguard.core.verdicts import CHANGED, CLOSE
 
     def run(weights):
         t = Trajectory(max_values=10)

@@ -23,11 +23,11 @@ import torch
 
 from trainguard.core.attribution import MAX_NAMES, compare_traces
 from trainguard.core.capture import Trajectory
-from trainguard.core.verdicts import CHANGED, CLOSE, IDENTICAL
 from trainguard.core.errors import UsageError
 from trainguard.core.records import TraceEntry
 from trainguard.core.tolerance import Tolerance
 from trainguard.core.trace import Tracer
+from trainguard.core.verdicts import CHANGED, CLOSE, IDENTICAL
 
 TOL = Tolerance(rtol=1e-5, atol=1e-8)
 

@@ -47,7 +47,7 @@ class GlobalState:
     env: dict[str, Any] = field(default_factory=dict)
 
     @classmethod
-    def capture(cls) -> "GlobalState":
+    def capture(cls) -> GlobalState:
         import torch
 
         state = cls(

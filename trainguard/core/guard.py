@@ -10,7 +10,7 @@ rest of the pipeline (metadata, repeats, bless or check, results folder, summary
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, Sequence
 
@@ -18,41 +18,22 @@ from .comparison import Comparison, compare
 from .errors import GoldenMissingError, TrainguardError, UsageError
 from .fixes import FixCommands
 from .meta import GoldenMeta, utc_stamp
+from .outcome import GuardResult
 from .records import Run
 from .report import first_metric_difference, first_tensor_difference, render_result
 from .report_files import row_for
 from .settings import GuardSettings, calibrated_policy
 from .store import GoldenStore
 from .tolerance import Policy, Tolerance
-from .verdicts import (BLESSED_CHANGED, BLESSED_NEW, BLESSED_UNCHANGED, CHANGED, IDENTICAL, NO_GOLDEN,
-                       NONDETERMINISTIC, UNREADABLE)
-
-
-@dataclass
-class GuardResult:
-    nodeid: str
-    folder: str
-    outcome: str
-    blessing: bool = False
-    comparison: Comparison | None = None
-    message: str = ""  # filled by `report.render_result` when the outcome fails the test
-    run: Run | None = None  # the new run (checks only)
-    reference: Run | None = None  # the golden it was compared with, when readable
-    divergence: str = ""  # one-line "where" for the summary when `comparison` alone does not say it
-    error: str = ""  # why the golden is unreadable
-    # nondeterministic only: first differences, number of runs, first differing run, how many
-    # differ, and the runs that agree with run 1
-    where: list[str] = field(default_factory=list)
-    runs: int = 0
-    differing_run: int = 0
-    differing: int = 0
-    agreeing: list[int] = field(default_factory=list)
-
-    @property
-    def failed(self) -> bool:
-        if self.outcome == NONDETERMINISTIC:  # fails checks and blesses alike: nothing was compared or written
-            return True
-        return not self.blessing and self.outcome in (CHANGED, NO_GOLDEN, UNREADABLE)
+from .verdicts import (
+    BLESSED_CHANGED,
+    BLESSED_NEW,
+    BLESSED_UNCHANGED,
+    IDENTICAL,
+    NO_GOLDEN,
+    NONDETERMINISTIC,
+    UNREADABLE,
+)
 
 
 def display_path(folder: Path, base: Path | None) -> str:

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any, Mapping
+from typing import TYPE_CHECKING, Any, Mapping, Protocol
 
 import numpy as np
 
@@ -48,7 +48,7 @@ class MetricSeries:
         self.values = np.asarray(self.values, dtype=np.float64)
 
 
-class Summarized:
+class Summarized(Protocol):
     """What state and trace entries share: a tensor's identity (dtype, shape, bytes) and its `Stats`."""
 
     dtype: str

@@ -15,7 +15,7 @@ from .text import fmt, join_names, short, table
 from .verdicts import CHANGED, CLOSE, IDENTICAL, NO_GOLDEN, NONDETERMINISTIC, UNREADABLE, rank
 
 if TYPE_CHECKING:
-    from .guard import GuardResult
+    from .outcome import GuardResult
 
 #: Most rows of one kind shown in a report before the rest is summarised.
 MAX_ROWS = 20
@@ -111,7 +111,7 @@ def describe_comparison(cmp: Comparison) -> str:
             reasons.append(f"value {fmt(t.golden_value)} -> {fmt(t.new_value)}")
         sizes = [short(t.max_abs), short(t.max_rel)] if t.basis else ["-", "-"]
         if t.sketch_distance is not None:
-            reasons.append(f"est. L2 distance {short(t.sketch_distance)} (allowed {short(t.sketch_allowed)})")
+            reasons.append(f"est. L2 distance {short(t.sketch_distance)} (allowed {short(t.sketch_allowed or 0.0)})")
         tensor_rows.append([t.name, t.kind, t.verdict, ", ".join(reasons), *sizes, off, t.basis or "-"])
     if tensor_rows:
         out.append("")

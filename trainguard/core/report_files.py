@@ -23,7 +23,7 @@ from .report import environment_changes, first_divergence
 from .verdicts import ATTENTION_ORDER, CHANGED, CLOSE, IDENTICAL, NONDETERMINISTIC
 
 if TYPE_CHECKING:
-    from .guard import GuardResult
+    from .outcome import GuardResult
     from .records import Run
 
 SUMMARY_MD = "summary.md"

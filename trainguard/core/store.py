@@ -23,8 +23,17 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from . import golden_format as fmt
-from .atomic import (COMMIT_FILE, LOCK_FILE, READ_LOCK_TIMEOUT, TEMP_PREFIX, WRITE_LOCK_TIMEOUT, FileSet,
-                     check_confined, folder_lock, short_error)
+from .atomic import (
+    COMMIT_FILE,
+    LOCK_FILE,
+    READ_LOCK_TIMEOUT,
+    TEMP_PREFIX,
+    WRITE_LOCK_TIMEOUT,
+    FileSet,
+    check_confined,
+    folder_lock,
+    short_error,
+)
 from .errors import GoldenCorruptError, GoldenMissingError, UsageError
 from .fixes import FixCommands, current
 from .paths import golden_folder

@@ -33,7 +33,7 @@ def _flatten(prefix: str, value: Any) -> Iterator[tuple[str, Any]]:
 class Tracer:
     """Hooks a module and an optimizer and records one `TraceEntry` per tensor per stage."""
 
-    _active: "Tracer | None" = None
+    _active: Tracer | None = None
 
     def __init__(self, model: Any, optimizer: Any, state_entries: Callable[[Any], Iterator[tuple[str, str, Any]]],
                  param_names: Callable[[Any], str]) -> None:

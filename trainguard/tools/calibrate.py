@@ -37,8 +37,17 @@ from ..core.project import default_golden_dir
 from ..core.records import Run
 from ..core.store import GoldenStore
 from . import pytest_runs
-from .calibration import (DEFAULT_RUNS, DEFAULT_SAFETY, Calibration, RecordedRun, RunSpec, Setting, analyse,
-                          check_golden, format_report)
+from .calibration import (
+    DEFAULT_RUNS,
+    DEFAULT_SAFETY,
+    Calibration,
+    RecordedRun,
+    RunSpec,
+    Setting,
+    analyse,
+    check_golden,
+    format_report,
+)
 
 __all__ = ["Calibration", "RecordedRun", "RunSpec", "Setting", "analyse", "calibrate", "plan", "thread_counts",
            "write_calibration"]

@@ -9,53 +9,19 @@ pytest-xdist) and are counted at the end.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Iterator, NoReturn
+from typing import TYPE_CHECKING, Any, Iterator
 
 import pytest
 
 from ...core.project import ci_enabled, ci_value
 from ...tools.pytest_runs import PytestCommands
+from .repeat import repeat_hints
+from .state import FIXTURE, MARKER, Pending, fail, guard_nodeid, remember_nodeid
 
 if TYPE_CHECKING:
-    from ...core.capture import Trajectory
-    from ...core.records import Run
-    from ...core.settings import GuardSettings
     from ...core.store import GoldenStore
 
-MARKER = "trainguard"
-FIXTURE = "trajectory"
-
-_PENDING_KEY = pytest.StashKey["Pending"]()
-_NODEID_KEY = pytest.StashKey[str]()
-
-
-class Pending:
-    """What the fixture hands to the call-phase hook for one test."""
-
-    def __init__(self, trajectory: Trajectory, settings: GuardSettings, fingerprint: dict[str, Any]) -> None:
-        self.trajectory = trajectory
-        self.settings = settings
-        self.fingerprint = fingerprint
-        self.repeats: list[Run] = []  # Runs of the repeats (--trainguard-repeat), after the first run
-        self.alerts: list[str] = []  # torch's deterministic-mode warnings during the runs
-
-    @staticmethod
-    def attach(item: pytest.Item, pending: Pending) -> None:
-        item.stash[_PENDING_KEY] = pending
-
-    @staticmethod
-    def of(item: pytest.Item) -> Pending | None:
-        return item.stash.get(_PENDING_KEY, None)
-
-
-def guard_nodeid(item: pytest.Item) -> str:
-    """The node id goldens, shards and reports use: the id as collected."""
-    return item.stash.get(_NODEID_KEY, item.nodeid)
-
-
-def is_guarded(item: pytest.Item) -> bool:
-    return item.get_closest_marker(MARKER) is not None or FIXTURE in getattr(item, "fixturenames", ())
-
+__all__ = ["FIXTURE", "MARKER", "GuardPlugin", "Pending", "guard_nodeid"]
 
 class GuardPlugin:
     """Per-session state (where goldens live, every verdict for the summary) and the guard's hooks."""
@@ -72,10 +38,7 @@ class GuardPlugin:
         plugin = config.pluginmanager.get_plugin(cls.NAME)
         return plugin if isinstance(plugin, cls) else None
 
-    @staticmethod
-    def fail(message: str) -> NoReturn:
-        __tracebackhide__ = True
-        pytest.fail(message, pytrace=False)
+    fail = staticmethod(fail)
 
     # -- configuration ---------------------------------------------------------------
     @property
@@ -114,7 +77,7 @@ class GuardPlugin:
         # Remember the node id as collected: with --dist loadgroup, pytest-xdist (on pytest < 9.2)
         # appends "@<group>" to the node ids of xdist_group tests in its collection hook, which must
         # change neither a test's golden folder nor its shard.
-        item.stash[_NODEID_KEY] = item.nodeid
+        remember_nodeid(item)
 
     @pytest.hookimpl(wrapper=True, tryfirst=True)
     def pytest_runtest_call(self, item: pytest.Item) -> Iterator[None]:
@@ -142,7 +105,6 @@ class GuardPlugin:
         __tracebackhide__ = True
         from ...core.errors import UsageError
         from ...core.guard import GuardRequest, settle
-        from .repeat import repeat_hints
 
         nodeid = guard_nodeid(item)
         pending.trajectory.close()

@@ -16,7 +16,7 @@ from typing import Any, Iterator
 
 import pytest
 
-from .guard import FIXTURE, GuardPlugin, Pending, guard_nodeid
+from .state import FIXTURE, Pending, fail, guard_nodeid
 
 
 class RepeatPlugin:
@@ -58,7 +58,7 @@ class _Repeats:
         funcargs = self.item.funcargs  # type: ignore[attr-defined]
         first = funcargs[FIXTURE]
         if FIXTURE not in getattr(getattr(self.item, "_fixtureinfo", None), "argnames", ()):
-            GuardPlugin.fail(f"{guard_nodeid(self.item)}: --trainguard-repeat gives each run a fresh 'trajectory' "
+            fail(f"{guard_nodeid(self.item)}: --trainguard-repeat gives each run a fresh 'trajectory' "
                              "argument, but this test gets the trajectory through another fixture; add a 'trajectory' "
                              "argument to the test and pass it on, or run it without --trainguard-repeat")
         try:

@@ -6,7 +6,7 @@ import hashlib
 
 import pytest
 
-from .guard import guard_nodeid, is_guarded
+from .state import guard_nodeid, is_guarded
 
 
 def parse_shard(raw: str) -> tuple[int, int]:
