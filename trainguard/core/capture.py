@@ -64,7 +64,30 @@ class Trajectory:
 
     # -- metrics -------------------------------------------------------------------
     def log(self, step: int, **metrics: Any) -> None:
-        """Record scalar metrics at an integer training step."""
+        """Record scalar metrics at an integer training step.
+
+        Parameters
+        ----------
+        step : int
+            The training step (a Python or NumPy integer, or a one-element integer tensor).
+            Steps must strictly increase for each metric.
+        **metrics
+            Metric name -> a Python number, NumPy scalar or one-element tensor; stored as float64.
+
+        Raises
+        ------
+        UsageError
+            A non-integer step, no metrics, a non-scalar value, or a repeated or decreasing
+            step; raised at the offending call, so the traceback points at the test's line.
+
+        Examples
+        --------
+        >>> traj = Trajectory()
+        >>> traj.log(0, loss=0.93, lr=0.05)
+        >>> traj.log(1, loss=0.71, lr=0.05)
+        >>> traj.to_run().metrics["loss"].values.tolist()
+        [0.93, 0.71]
+        """
         __tracebackhide__ = True
         if isinstance(step, bool) or not isinstance(step, (numbers.Integral,)) and not (
             _is_tensor(step) and step.numel() == 1 and not step.is_floating_point()
@@ -95,8 +118,28 @@ class Trajectory:
     def state(self, model: Any = None, optimizer: Any = None, **named: Any) -> None:
         """Record the final state: a module's parameters and buffers, an optimizer's state, named tensors.
 
-        Keyword arguments may be tensors, NumPy arrays, numbers, modules or optimizers;
-        modules and optimizers given by keyword are recorded under that keyword as prefix.
+        Parameters
+        ----------
+        model : torch.nn.Module, optional
+            Every parameter and buffer, under its `named_parameters()` / `named_buffers()` name.
+        optimizer : torch.optim.Optimizer, optional
+            Every state entry, named `<parameter name>.<state key>` (lists flattened with an
+            index), and the numeric hyperparameters of each param group (`param_groups.0.lr`).
+        **named
+            Tensors, NumPy arrays, numbers, or further modules and optimizers, which are
+            recorded under the keyword as prefix (`critic=d, d_opt=opt_d`).
+
+        Raises
+        ------
+        UsageError
+            Nothing to record, a value of an unsupported type, or two entries of the same name.
+
+        Examples
+        --------
+        >>> import torch                                                  # doctest: +SKIP
+        >>> model = torch.nn.Linear(3, 1)                                 # doctest: +SKIP
+        >>> opt = torch.optim.SGD(model.parameters(), lr=0.1, momentum=0.9)  # doctest: +SKIP
+        >>> trajectory.state(model, optimizer=opt, oven_temperature=torch.tensor(180.0))  # doctest: +SKIP
         """
         __tracebackhide__ = True
         import torch
@@ -208,6 +251,24 @@ class Trajectory:
 
         The trace lets a failure report name the first step and stage (data, forward,
         backward, update) where the run departs from its golden. Call it once, before training.
+
+        Parameters
+        ----------
+        model : torch.nn.Module
+            Its forward inputs (stage data) and outputs (stage forward) are recorded.
+        optimizer : torch.optim.Optimizer
+            Gradients before each step (backward), parameters and state after it (update).
+
+        Raises
+        ------
+        UsageError
+            Called twice, or with something that is not a module and an optimizer.
+
+        Examples
+        --------
+        >>> trajectory.watch(model, opt)   # doctest: +SKIP
+        >>> for step in range(40):         # doctest: +SKIP
+        ...     train_step(model, opt, batch(step))
         """
         __tracebackhide__ = True
         import torch
