@@ -21,6 +21,7 @@ import shlex
 import shutil
 
 import pytest
+from pytest_output import outcomes, sections
 
 pytestmark = pytest.mark.slow
 
@@ -31,32 +32,6 @@ def run(pytester: pytest.Pytester, *args: str) -> pytest.RunResult:
                                          *args, timeout=120)
 
 
-_HEADER = re.compile(r"^_{3,} (.+?) _{3,}$")
-_VERBOSE = re.compile(r"^(\S+::\S+) (PASSED|FAILED|ERROR)\b")
-
-
-def sections(result: pytest.RunResult) -> dict[str, str]:
-    """Failure sections of pytest's report, keyed by test name."""
-    out: dict[str, list[str]] = {}
-    current: list[str] | None = None
-    for line in result.stdout.lines:
-        m = _HEADER.match(line)
-        if m:
-            current = out.setdefault(m.group(1), [])
-        elif line.startswith("=") and line.endswith("="):
-            current = None
-        elif current is not None:
-            current.append(line)
-    return {k: "\n".join(v) for k, v in out.items()}
-
-
-def outcomes(result: pytest.RunResult) -> dict[str, str]:
-    found: dict[str, str] = {}
-    for line in result.stdout.lines:
-        m = _VERBOSE.match(line)
-        if m:
-            found.setdefault(m.group(1), m.group(2))
-    return found
 
 
 # -- repeats: a greenhouse whose sensors may jitter ------------------------------------------
