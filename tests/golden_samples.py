@@ -121,11 +121,12 @@ def rewrite(path: Path, table: Any = None, metadata: dict[bytes, bytes] | None =
     pq.write_table(table.replace_schema_metadata(merged), path)
 
 
-def downgrade_to_format_1(folder: Path) -> None:
-    """Turn a format-2 golden folder into what trainguard 0.1 (format 1) wrote: no digest, no run id."""
+def downgrade_to_format_1(folder: Path, only: str = "*.parquet") -> None:
+    """Turn a format-2 golden folder (or its files matching `only`) into what trainguard 0.1
+    (format 1) wrote: no digest, no run id."""
     import pyarrow.parquet as pq
 
-    for path in sorted(folder.glob("*.parquet")):
+    for path in sorted(folder.glob(only)):
         table = pq.read_table(path)
         meta = {k: v for k, v in table.schema.metadata.items()
                 if k not in (golden_format.KEY_DIGEST, golden_format.KEY_RUN_ID, golden_format.KEY_WRITER)}

@@ -145,14 +145,46 @@ def test_a_file_of_another_write_makes_the_set_mixed(tmp_path, folder):
 # -- format versions and upgrade-goldens ---------------------------------------------------------
 
 
-def test_format_1_goldens_are_read_without_a_digest(folder):
-    downgrade_to_format_1(folder)
-    back = golden.read_run(folder)
-    assert back.meta["format_version"] == 1 and same_run(back, A)
-    # A format-1 file cannot be checked: an edit goes unnoticed until upgrade-goldens adds digests.
+def test_format_1_goldens_are_refused_with_the_fix_and_never_read(folder):
+    # A format-2 golden edited and rewritten as format 1 (digest dropped) is the downgrade that
+    # used to bypass tamper detection: now no reader takes format 1 at all.
     table = pq.read_table(folder / "metrics.parquet")
     rewrite(folder / "metrics.parquet", table.set_column(2, "value", pa.array(np.zeros(table.num_rows))))
-    assert golden.read_run(folder).metrics["loss"].values.tolist() == [0.0] * 12
+    downgrade_to_format_1(folder)
+    with pytest.raises(GoldenVersionError) as info:
+        golden.read_run(folder)
+    assert "format 1" in str(info.value) and "trainguard upgrade-goldens" in str(info.value)
+
+
+def test_upgrade_refuses_a_folder_that_mixes_formats(tmp_path, capsys):
+    root = tmp_path / "golden"
+    target = root / "tests" / "test_a.py" / "test_mixed"
+    golden.write_run(target, A)
+    downgrade_to_format_1(target, only="state.parquet")  # one file of a format-2 golden rewritten as format 1
+    before = snapshot(root)
+    assert main(["upgrade-goldens", str(root)]) == 2
+    assert "mix" in capsys.readouterr().err  # refused as a mixed set (run ids differ) or as mixed formats
+    assert snapshot(root) == before
+
+
+def test_upgrade_refuses_a_file_that_was_format_2_in_the_last_commit(tmp_path, capsys):
+    import subprocess
+
+    root = tmp_path / "golden"
+    target = root / "tests" / "test_a.py" / "test_downgraded"
+    golden.write_run(target, A)
+    git = ["git", "-c", "user.name=Depot", "-c", "user.email=depot@example.invalid"]
+    subprocess.run(["git", "init", "-q", str(tmp_path)], check=True)
+    subprocess.run([*git, "-C", str(tmp_path), "add", "-A"], check=True)
+    subprocess.run([*git, "-C", str(tmp_path), "commit", "-qm", "goldens"], check=True)
+    table = pq.read_table(target / "metrics.parquet")
+    rewrite(target / "metrics.parquet", table.set_column(2, "value", pa.array(np.zeros(table.num_rows))))
+    downgrade_to_format_1(target)
+    before = snapshot(root)
+    assert main(["upgrade-goldens", str(root)]) == 2
+    err = capsys.readouterr().err
+    assert "was format 2 in the last commit" in err and "git checkout HEAD --" in err
+    assert snapshot(root) == before
 
 
 def test_upgrade_goldens_is_idempotent_keeps_content_and_adds_digests(tmp_path, capsys):
@@ -168,6 +200,7 @@ def test_upgrade_goldens_is_idempotent_keeps_content_and_adds_digests(tmp_path, 
     assert main(["upgrade-goldens", str(root)]) == 0
     out = capsys.readouterr().out
     assert "1 of 2 golden folder(s)" in out and "upgraded from format 1" in out
+    assert "vouches for their content" in out  # the user is told what the upgrade takes on trust
     assert snapshot(current) == current_before  # already current: not rewritten
     back = golden.read_run(old)
     assert back.meta["format_version"] == 2 and same_run(back, A)
@@ -345,7 +378,7 @@ def test_files_over_the_size_limit_are_refused_before_loading(folder, monkeypatc
 def test_ini_value_of_the_size_limit():
     from trainguard.core.errors import UsageError
 
-    assert golden_format.max_bytes_from_ini("") == 512 * 1024 * 1024
+    assert golden_format.max_bytes_from_ini("") == 32 * 1024 * 1024
     assert golden_format.max_bytes_from_ini("2") == 2 * 1024 * 1024
     assert golden_format.max_bytes_from_ini("0.5") == 512 * 1024
     for bad in ("0", "-1", "nan", "inf", "lots"):
@@ -365,7 +398,7 @@ def test_declared_uncompressed_sizes_and_value_counts_are_limited(tmp_path):
     limit = max(file_size, (tmp_path / "g" / "metrics.parquet").stat().st_size) + 1
     with pytest.raises(GoldenCorruptError) as info:  # ... but decoding them would take 480 kB
         golden.read_run(tmp_path / "g", max_bytes=limit)
-    assert info.value.path == str(path) and "declares" in str(info.value)
+    assert info.value.path == str(path) and "would decode to" in str(info.value)
     assert same_run(golden.read_run(tmp_path / "g"), run)
 
 
@@ -415,7 +448,7 @@ HOSTILE = {
     "negative shape": ("state.parquet", lambda p: _set_state_cells(p, shape=[-4, -6]), "invalid shape"),
     "null tensor name": ("state.parquet", lambda p: _set_state_cells(p, name=None), "no tensor name"),
     "unknown trace stage": ("trace.parquet", lambda p: rewrite(p, pq.read_table(p).set_column(1, "stage", pa.array(["baking"] * pq.read_table(p).num_rows)), reseal=True), "unknown stage"),
-    "sketch of a million values": ("state.parquet", lambda p: _set_state_cells(p, sketch=[0.0] * 5000), "larger than trainguard writes"),
+    "sketch of a million values": ("state.parquet", lambda p: _set_state_cells(p, sketch=[0.0] * 5000), "trainguard writes at most 4096"),
 }
 
 

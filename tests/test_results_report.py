@@ -203,7 +203,11 @@ def test_diff_prints_the_plugins_report_and_exits_1_on_change(orchard, capsys):
     body = out.splitlines()[1:]
     assert len(body) > 8
     plugin_out = orchard.checked.stdout
-    missing = [line for line in body if line not in plugin_out]
+    # Only the tolerance's source differs: the plugin knows it came from the defaults, diff that the
+    # reference golden recorded it.
+    assert "tolerance: rtol=1e-05, atol=1e-08 (from golden)" in out
+    assert "tolerance: rtol=1e-05, atol=1e-08 (from default)" in str(plugin_out)
+    missing = [line for line in body if line not in plugin_out and "(from golden)" not in line]
     assert not missing, f"diff lines not in the plugin's report: {missing}"
 
 
@@ -212,13 +216,14 @@ def test_diff_exit_0_within_tolerance_and_the_tolerance_options(orchard, capsys)
     assert main(["diff", str(g), str(r)]) == 0
     assert "outcome: within tolerance   tolerance: rtol=1e-05, atol=1e-08" in capsys.readouterr().out
     assert main(["diff", str(g), str(r), "--exact"]) == 1
-    assert "outcome: changed   tolerance: exact (bitwise)" in capsys.readouterr().out
+    assert "outcome: changed   tolerance: exact (bitwise; from command line)" in capsys.readouterr().out
     # 1e-9 relative drift fails a 1e-12 relative tolerance without absolute slack ...
     assert main(["diff", str(g), str(r), "--rtol", "1e-12", "--atol", "0"]) == 1
-    assert "tolerance: rtol=1e-12, atol=0" in capsys.readouterr().out
-    # ... and the momentum change passes a (silly) tolerance wide enough to cover it.
+    assert "tolerance: rtol=1e-12, atol=0 (from command line)" in capsys.readouterr().out
+    # ... and a tolerance wide enough to hide the momentum change is refused, not applied.
     pg, pr = golden_folder(orchard.goldens, PRUNED), golden_folder(orchard.results, PRUNED)
-    assert main(["diff", str(pg), str(pr), "--rtol", "1e6", "--atol", "10"]) == 0
+    assert main(["diff", str(pg), str(pr), "--rtol", "1e6", "--atol", "10"]) == 2
+    assert "looser than trainguard allows" in capsys.readouterr().err
     # identical folders
     assert main(["diff", str(g), str(g)]) == 0
     assert "outcome: identical" in capsys.readouterr().out

@@ -24,6 +24,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import os
 import struct
 from pathlib import Path
 from typing import Any, Callable
@@ -34,6 +35,7 @@ from .atomic import short_error
 from .errors import GoldenCorruptError, GoldenError, GoldenVersionError, UsageError
 from .fixes import FixCommands, current
 from .meta import GoldenMeta, MetaError
+from .parquet_bounds import BoundsError, OverLimitError, measure
 from .records import STAGE_ORDER, MetricSeries, Run, TensorRecord, TraceEntry
 from .version import __version__
 
@@ -53,10 +55,14 @@ KEY_RUN_ID = b"trainguard.run_id"
 KEY_WRITER = b"trainguard.writer"
 KEY_DIGEST = b"trainguard.digest"
 KEY_PREFIX = b"trainguard."
-#: Largest golden file read by default; larger files are refused before loading.
-DEFAULT_MAX_FILE_BYTES = 512 * 1024 * 1024
-#: Declared uncompressed data may be at most this many times the file size limit.
-UNCOMPRESSED_FACTOR = 4
+#: Largest golden file read by default; larger files are refused before loading. Real goldens
+#: are kilobytes to a few MiB (values are kept only for tensors up to `trainguard_max_values`).
+DEFAULT_MAX_FILE_BYTES = 32 * 1024 * 1024
+#: Decoded data may be at most this many times the file size limit (see `read_limits`).
+DECODED_FACTOR = 4
+#: Longest shape and sketch trainguard writes (a sketch has `checksum.SKETCH_ROWS x width` values at most).
+MAX_DIMS = 64
+MAX_SKETCH = 4096
 #: Metadata JSON nested deeper than this is refused (trainguard writes depth 4 at most).
 MAX_META_DEPTH = 32
 _DIGEST_LABEL = b"trainguard golden digest 1\x00"
@@ -165,6 +171,8 @@ def _feed_array(h: Any, arr: Any) -> None:
     import pyarrow.compute as pc
 
     if isinstance(arr, pa.ChunkedArray):
+        if pa.types.is_dictionary(arr.type):  # one dictionary per row group: decode each, then join
+            arr = pa.chunked_array([c.dictionary_decode() for c in arr.chunks], type=arr.type.value_type)
         arr = arr.combine_chunks() if arr.num_chunks else pa.array([], type=arr.type)
     if pa.types.is_dictionary(arr.type):
         arr = arr.dictionary_decode()
@@ -175,8 +183,8 @@ def _feed_array(h: Any, arr: Any) -> None:
     t = arr.type
     if pa.types.is_int64(t) or pa.types.is_float64(t):
         filled = arr.fill_null(0) if arr.null_count else arr
-        h.update(np.ascontiguousarray(filled.to_numpy(zero_copy_only=False), dtype="<i8" if pa.types.is_int64(t)
-                                      else "<f8").tobytes())
+        h.update(memoryview(np.ascontiguousarray(filled.to_numpy(zero_copy_only=False),
+                                                 dtype="<i8" if pa.types.is_int64(t) else "<f8")).cast("B"))
     elif pa.types.is_string(t):
         filled = arr.fill_null("") if arr.null_count else arr
         lengths = pc.binary_length(filled).to_numpy(zero_copy_only=False).astype("<u8")
@@ -239,7 +247,7 @@ def content_digest(kind: str, table: Any, metadata: dict[bytes, bytes]) -> str:
 
 
 def max_bytes_from_ini(raw: Any) -> int:
-    """The ini option `trainguard_max_file_mib` (MiB, may be fractional) in bytes; default 512 MiB."""
+    """The ini option `trainguard_max_file_mib` (MiB, may be fractional) in bytes; default 32 MiB."""
     if raw in (None, ""):
         return DEFAULT_MAX_FILE_BYTES
     try:
@@ -360,9 +368,33 @@ class FileRead:
         self.table, self.meta, self.version, self.run_id = table, meta, version, run_id
 
 
+def read_limits(max_bytes: int) -> dict[str, int]:
+    """The limits a read enforces, all derived from the file size limit B (`trainguard_max_file_mib`).
+
+    - decoded data (Arrow's memory, strings kept dictionary-encoded): at most 4 B;
+    - one page once decompressed: at most 4 B; decoded strings (all string cells): at most B;
+    - rows that become Python records (state entries, trace entries) and distinct metric
+      names: at most B / 256 each (128 Ki at the default B = 32 MiB);
+    - per cell: a shape of at most 64 dimensions, a sketch of at most 4096 values.
+
+    At the default B these keep a reader below 256 MiB above its baseline for any file,
+    however it is encoded (tests/test_hostile_goldens.py measures it).
+    """
+    return {"decoded": DECODED_FACTOR * max_bytes, "page": DECODED_FACTOR * max_bytes, "strings": max_bytes,
+            "records": max(max_bytes // 256, 1), "dims": MAX_DIMS, "sketch": MAX_SKETCH}
+
+
 def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
-              commands: FixCommands | None = None) -> FileRead:
+              commands: FixCommands | None = None, data: bytes | None = None, accept_format_1: bool = False) -> FileRead:
     """Read and verify one golden file; `path` may be a commit's temp file for `kind`.
+
+    The file is read into memory once (so what is checked is what is decoded), its footer
+    and page headers are measured in pure Python (`parquet_bounds`) against `read_limits`,
+    and only then does pyarrow decode it, one row group at a time, strings kept as
+    dictionaries. `data` gives the bytes directly (a file from git history, for `audit`).
+
+    Format 1 carried no digest, so a format-1 file cannot be told from an edited one: it is
+    refused (with the fix) unless `accept_format_1`, which only `upgrade-goldens` passes.
 
     Raises `GoldenCorruptError` or `GoldenVersionError` naming `path`; `commands` supplies
     the re-bless command quoted when a digest does not match.
@@ -371,31 +403,40 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
     import pyarrow.parquet as pq
 
     expected = schema_of(kind)
-    if path.is_symlink():
-        raise GoldenCorruptError(path, "is a symbolic link; goldens must be regular files", "replace it with the real file")
-    if not path.is_file():
-        if path.exists():
-            raise GoldenCorruptError(path, "is not a regular file (a folder?) where a golden file belongs",
-                                     "remove it, then re-bless")
-        raise GoldenCorruptError(path, "is missing while its sibling golden file exists")
-    try:
-        size = path.stat().st_size
-    except OSError as exc:
-        raise GoldenCorruptError(path, f"cannot be read ({short_error(exc)})") from None
-    if size > max_bytes:
+    if data is None:
+        data = _read_bytes(path, max_bytes)
+    if len(data) > max_bytes:
         raise GoldenCorruptError(
-            path, f"is {size} bytes, over the {max_bytes}-byte limit for golden files; refusing to load it",
+            path, f"is {len(data)} bytes, over the {max_bytes}-byte limit for golden files; refusing to load it",
             "raise the ini option trainguard_max_file_mib if the file is genuine")
+    limits = read_limits(max_bytes)
+    raise_limit = "raise the ini option trainguard_max_file_mib if the file is genuine"
     try:
-        pf = pq.ParquetFile(path)
-        schema = pf.schema_arrow
-        _check_declared_sizes(path, pf.metadata, max_bytes)
-    except GoldenError:
-        raise
+        bounds = measure(data, limits["page"])
+    except OverLimitError as exc:
+        raise GoldenCorruptError(path, f"would decode to more than the limits allow ({exc}); refusing to decode it",
+                                 raise_limit) from None
+    except BoundsError as exc:
+        raise GoldenCorruptError(path, f"is not a readable Parquet file ({exc})") from None
+    if bounds.decoded_bytes > limits["decoded"]:
+        raise GoldenCorruptError(path, f"would decode to about {bounds.decoded_bytes} bytes, over the limit of "
+                                 f"{limits['decoded']} ({DECODED_FACTOR} x the file size limit); refusing to decode it",
+                                 raise_limit)
+    if kind != METRICS_FILE and bounds.num_rows > limits["records"]:
+        raise GoldenCorruptError(path, f"declares {bounds.num_rows} rows, more than the {limits['records']} allowed "
+                                 "(file size limit / 256)", raise_limit)
+    try:
+        source = pa.BufferReader(data)
+        schema = pq.read_schema(source)
     except (pa.ArrowException, OSError, ValueError, MemoryError, OverflowError, TypeError, KeyError, IndexError) as exc:
         raise GoldenCorruptError(path, f"is not a readable Parquet file ({short_error(exc)})") from None
     raw = dict(schema.metadata or {})
     version, meta = _check_metadata(path, raw)
+    if version == 1 and not accept_format_1:
+        raise GoldenVersionError(
+            path, "is in golden format 1, which carries no content digest: trainguard cannot tell it from an edited "
+            "file, so it does not read it (a format-2 golden rewritten as format 1 is the classic way to hide an edit)",
+            f"review the golden's history (git log -p -- {path.parent}), then vouch for it: trainguard upgrade-goldens")
     present = []
     for field in expected:
         if field.name not in schema.names:
@@ -408,42 +449,91 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
         actual = schema.field(field.name).type
         if not actual.equals(field.type):
             raise GoldenCorruptError(path, f"column {field.name!r} has type {actual}, expected {field.type}")
-    if version >= 2:
-        extra = [n for n in schema.names if n not in present]
-        if extra:
-            raise GoldenCorruptError(path, f"has columns trainguard does not write: {', '.join(map(repr, extra[:5]))}")
+    extra = [n for n in schema.names if n not in present]
+    if extra:
+        raise GoldenCorruptError(path, f"has columns trainguard does not write: {', '.join(map(repr, extra[:5]))}")
+    strings = [f.name for f in expected if f.type == pa.string()]
     try:
-        table = pf.read(columns=present)
+        pf = pq.ParquetFile(pa.BufferReader(data), read_dictionary=strings)
+        if pf.metadata.num_row_groups != len(bounds.row_groups):
+            raise GoldenCorruptError(path, "has a footer pyarrow reads differently from the Parquet spec")
+        groups = [pf.read_row_group(i, columns=present) for i in range(len(bounds.row_groups))]
+        table = pa.concat_tables(groups) if groups else schema.empty_table().select(present)
+    except GoldenError:
+        raise
     except (pa.ArrowException, OSError, ValueError, MemoryError, OverflowError, TypeError, KeyError, IndexError) as exc:
         raise GoldenCorruptError(path, f"cannot be read ({short_error(exc)})") from None
+    _check_cells(path, table, strings, limits)
     run_id = None
     if version >= 2:
         run_id = _check_digest(path, kind, table, raw, commands or current())
     return FileRead(table, meta, version, run_id)
 
 
-def _check_declared_sizes(path: Path, md: Any, max_bytes: int) -> None:
-    """Refuse files whose footer declares more data than the limits allow, before decoding."""
-    limit = UNCOMPRESSED_FACTOR * max_bytes
-    max_values = max(max_bytes // 8, 1)
-    total = values = 0
-    if md.num_rows < 0 or md.num_rows > max_values:
-        raise GoldenCorruptError(path, f"declares {md.num_rows} rows, more than the {max_values} allowed")
-    # Row-group totals only: pyarrow's per-column metadata accessor (RowGroupMetaData.column)
-    # can abort the whole process on a damaged footer (an uncaught C++ ParquetException about
-    # level histograms, seen with pyarrow 26), so it is never called on an unverified file.
-    for i in range(md.num_row_groups):
-        rg = md.row_group(i)
-        if rg.total_byte_size < 0 or rg.num_rows < 0:
-            raise GoldenCorruptError(path, "declares negative sizes in its footer")
-        total += rg.total_byte_size
-        values += rg.num_rows * max(md.num_columns, 1)
-    if total > limit:
-        raise GoldenCorruptError(path, f"declares {total} bytes of uncompressed data, over the limit of {limit} "
-                                 f"({UNCOMPRESSED_FACTOR} x the file size limit); refusing to decode it")
-    if values > max_values:
-        raise GoldenCorruptError(path, f"declares {values} values, more than the {max_values} allowed "
-                                 "(file size limit / 8); refusing to decode it")
+def _read_bytes(path: Path, max_bytes: int) -> bytes:
+    if path.is_symlink():
+        raise GoldenCorruptError(path, "is a symbolic link; goldens must be regular files", "replace it with the real file")
+    if not path.is_file():
+        if path.exists():
+            raise GoldenCorruptError(path, "is not a regular file (a folder?) where a golden file belongs",
+                                     "remove it, then re-bless")
+        raise GoldenCorruptError(path, "is missing while its sibling golden file exists")
+    try:
+        with open(path, "rb") as fh:
+            size = os.fstat(fh.fileno()).st_size
+            if size > max_bytes:
+                raise GoldenCorruptError(
+                    path, f"is {size} bytes, over the {max_bytes}-byte limit for golden files; refusing to load it",
+                    "raise the ini option trainguard_max_file_mib if the file is genuine")
+            return fh.read(max_bytes + 1)
+    except OSError as exc:
+        raise GoldenCorruptError(path, f"cannot be read ({short_error(exc)})") from None
+
+
+def string_lengths(column: Any) -> np.ndarray:
+    """The UTF-8 byte length of every cell of a string column (dictionary-encoded or not), nulls 0."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    parts = []
+    for chunk in (column.chunks if isinstance(column, pa.ChunkedArray) else [column]):
+        if pa.types.is_dictionary(chunk.type):
+            lengths = pc.binary_length(chunk.dictionary).fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64)
+            codes = chunk.indices.fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64)
+            if codes.size and (codes.min() < 0 or codes.max() >= max(lengths.size, 1)):
+                raise ValueError("dictionary index out of range")
+            parts.append(lengths[codes] if lengths.size else np.zeros(codes.size, np.int64))
+        else:
+            parts.append(pc.binary_length(chunk).fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64))
+    return np.concatenate(parts) if parts else np.zeros(0, np.int64)
+
+
+def _check_cells(path: Path, table: Any, strings: list[str], limits: dict[str, int]) -> None:
+    """Decoded string sizes and per-row list lengths, checked on the encoded form before anything expands."""
+    total = 0
+    for name in strings:
+        try:
+            total += int(string_lengths(table.column(name)).sum())
+        except ValueError:
+            raise GoldenCorruptError(path, f"column {name!r} refers to dictionary entries that do not exist") from None
+    if total > limits["strings"]:
+        raise GoldenCorruptError(path, f"holds {total} bytes of text once decoded, over the {limits['strings']}-byte "
+                                 "limit", "raise the ini option trainguard_max_file_mib if the file is genuine")
+    for name, cap in (("shape", limits["dims"]), ("sketch", limits["sketch"])):
+        if name in table.column_names:
+            lengths = list_lengths(table.column(name))
+            if lengths.size and int(lengths.max()) > cap:
+                raise GoldenCorruptError(path, f"has a {name} of {int(lengths.max())} values; trainguard writes at "
+                                         f"most {cap}")
+
+
+def list_lengths(column: Any) -> np.ndarray:
+    """The length of every cell of a list column (nulls 0), from its offsets: nothing is converted."""
+    import pyarrow as pa
+
+    chunks = column.chunks if isinstance(column, pa.ChunkedArray) else [column]
+    parts = [c.value_lengths().fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64) for c in chunks]
+    return np.concatenate(parts) if parts else np.zeros(0, np.int64)
 
 
 def _check_digest(path: Path, kind: str, table: Any, raw: dict[bytes, bytes], commands: FixCommands) -> str:
@@ -527,40 +617,117 @@ def pq_metadata(path: Path) -> dict[bytes, bytes]:
 
 
 
+def string_codes(column: Any) -> tuple[list[str | None], np.ndarray]:
+    """A string column as (distinct values, one code per row): linear time, one Python str per distinct value.
+
+    Works on dictionary-encoded columns (as `read_file` returns them, one dictionary per row
+    group, possibly with repeated entries) and on plain ones; a null cell gets the code of None.
+    """
+    import pyarrow as pa
+
+    values: list[str | None] = []
+    index: dict[str | None, int] = {}
+    parts = []
+    chunks = column.chunks if isinstance(column, pa.ChunkedArray) else [column]
+    for chunk in chunks:
+        if not pa.types.is_dictionary(chunk.type):
+            chunk = chunk.dictionary_encode()
+        local = []
+        for v in chunk.dictionary.to_pylist():
+            if v not in index:
+                index[v] = len(values)
+                values.append(v)
+            local.append(index[v])
+        codes = chunk.indices.to_numpy(zero_copy_only=False)
+        if chunk.null_count:
+            if None not in index:
+                index[None] = len(values)
+                values.append(None)
+            codes = chunk.indices.fill_null(len(local)).to_numpy(zero_copy_only=False)
+            local.append(index[None])
+        parts.append(np.asarray(local, dtype=np.int64)[codes.astype(np.int64)] if len(local) else
+                     np.zeros(len(codes), np.int64))
+    return values, (np.concatenate(parts) if parts else np.zeros(0, np.int64))
+
+
+def _cells(table: Any, column: str) -> list[Any]:
+    """A string column as Python values per row, sharing one str per distinct value."""
+    values, codes = string_codes(table.column(column))
+    return [values[c] for c in codes.tolist()]
+
+
 def trace_from_table(path: Path, table: Any) -> list[TraceEntry]:
+    shapes = _int_list_cells(table, "shape")
+    sketches = _list_cells(table, "sketch")
+    strings = {c: _cells(table, c) for c in ("stage", "name", "dtype", "sha256")}
+    plain = table.select(["step", "seq", "call", "nonfinite", *_STATE_FLOAT_COLUMNS]).to_pydict()
     entries = []
-    for i, row in enumerate(table.to_pylist()):
-        if any(row[k] is None for k in ("step", "stage", "seq", "call", "name", "dtype", "shape", "sha256", "nonfinite")):
+    for i in range(table.num_rows):
+        row = {k: v[i] for k, v in plain.items()}
+        row.update({k: v[i] for k, v in strings.items()})
+        if any(row[k] is None for k in ("step", "stage", "seq", "call", "name", "dtype", "sha256", "nonfinite")) \
+                or shapes[i] is None:
             raise GoldenCorruptError(path, f"row {i} has empty (null) cells")
         if row["stage"] not in STAGE_ORDER:
             raise GoldenCorruptError(path, f"row {i} has unknown stage {row['stage']!r}")
         floats = [math.nan if row[c] is None else float(row[c]) for c in _STATE_FLOAT_COLUMNS]
-        shape = tuple(int(d) for d in row["shape"] if d is not None)
-        if len(shape) != len(row["shape"]) or any(d < 0 for d in shape):
-            raise GoldenCorruptError(path, f"row {i} has an invalid shape {row['shape'][:8]}")
+        shape = shapes[i]
+        if shape is None or any(d < 0 for d in shape):
+            raise GoldenCorruptError(path, f"row {i} has an invalid shape {shape}")
         entries.append(TraceEntry(int(row["step"]), row["stage"], int(row["seq"]), int(row["call"]), row["name"],
                                   row["dtype"], shape, row["sha256"],
-                                  *floats, int(row["nonfinite"]), _sketch_cell(path, row["name"], row.get("sketch"))))
+                                  *floats, int(row["nonfinite"]), _sketch_cell(path, row["name"], sketches[i])))
     return entries
 
 
-def metrics_from_table(path: Path, table: Any) -> dict[str, MetricSeries]:
-    names = table.column("metric").to_pylist()
+def metrics_from_table(path: Path, table: Any, max_names: int | None = None) -> dict[str, MetricSeries]:
+    """Series by metric name, in linear time (codes sorted once, not one pass per name)."""
+    names, codes = string_codes(table.column("metric"))
     steps = table.column("step").to_numpy(zero_copy_only=False)
     values = table.column("value").to_numpy(zero_copy_only=False)
-    if any(n is None for n in names) or table.column("step").null_count or table.column("value").null_count:
+    if None in names or table.column("step").null_count or table.column("value").null_count:
         raise GoldenCorruptError(path, "has empty (null) cells in metric, step or value")
+    if max_names is not None and len(names) > max_names:
+        raise GoldenCorruptError(path, f"holds {len(names)} metric names, more than the {max_names} allowed "
+                                 "(file size limit / 256)",
+                                 "raise the ini option trainguard_max_file_mib if the file is genuine")
     out: dict[str, MetricSeries] = {}
-    if not names:
+    if not len(codes):
         return out
-    names_arr = np.asarray(names, dtype=object)
-    order = np.argsort(names_arr, kind="stable")
-    for name in dict.fromkeys(names_arr[order]):
-        mask = names_arr == name
-        s = np.asarray(steps[mask], dtype=np.int64)
+    order = np.argsort(codes, kind="stable")
+    sorted_codes = codes[order]
+    bounds = np.flatnonzero(np.diff(sorted_codes)) + 1
+    starts = np.concatenate(([0], bounds))
+    ends = np.concatenate((bounds, [len(order)]))
+    steps = np.asarray(steps, dtype=np.int64)
+    values = np.asarray(values, dtype=np.float64)
+    groups = {}
+    for lo, hi in zip(starts.tolist(), ends.tolist()):
+        idx = order[lo:hi]
+        groups[names[int(sorted_codes[lo])]] = idx
+    for name in sorted(groups):  # by name, as before
+        idx = groups[name]
+        s = steps[idx]
         if s.size > 1 and not np.all(np.diff(s) > 0):
             raise GoldenCorruptError(path, f"metric {name!r} has steps that do not strictly increase")
-        out[str(name)] = MetricSeries(s, np.asarray(values[mask], dtype=np.float64))
+        out[str(name)] = MetricSeries(s, values[idx])
+    return out
+
+
+def _int_list_cells(table: Any, column: str) -> list[tuple[int, ...] | None]:
+    """A list<int64> column (shapes) as tuples; None for a null cell or one holding a null element."""
+    import pyarrow as pa
+
+    arr = table.column(column)
+    arr = pa.concat_arrays(arr.chunks) if arr.num_chunks else pa.array([], type=arr.type)
+    offsets = arr.offsets.to_numpy()
+    flat = arr.values.fill_null(-1).to_numpy(zero_copy_only=False).tolist()
+    bad = arr.values.is_null().to_numpy(zero_copy_only=False)
+    nulls = arr.is_null().to_numpy(zero_copy_only=False)
+    out: list[tuple[int, ...] | None] = []
+    for i in range(len(arr)):
+        lo, hi = int(offsets[i]), int(offsets[i + 1])
+        out.append(None if nulls[i] or bad[lo:hi].any() else tuple(flat[lo:hi]))
     return out
 
 
@@ -569,9 +736,12 @@ def _list_cells(table: Any, column: str) -> list[np.ndarray | None]:
 
     Null elements inside a list read as NaN, as the per-element path did.
     """
+    import pyarrow as pa
+
     if column not in table.column_names:
         return [None] * table.num_rows
-    arr = table.column(column).combine_chunks()
+    col = table.column(column)
+    arr = pa.concat_arrays(col.chunks) if col.num_chunks else pa.array([], type=col.type)
     offsets = arr.offsets.to_numpy()
     flat = arr.values.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
     nulls = arr.is_null().to_numpy(zero_copy_only=False)

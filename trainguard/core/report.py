@@ -62,8 +62,7 @@ def describe_comparison(cmp: Comparison) -> str:
     """The body of a report: metric table, tensor table, environment changes."""
     out: list[str] = []
     p = cmp.policy
-    mode = "exact (bitwise)" if p.exact else p.default.describe()
-    out.append(f"outcome: {cmp.outcome}   tolerance: {mode}")
+    out.append(f"outcome: {cmp.outcome}   tolerance: {p.describe()}")
     if cmp.trace is not None:
         out.append(cmp.trace.summary())
 

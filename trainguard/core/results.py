@@ -81,8 +81,10 @@ def adopt(results: GoldenStore, golden: GoldenStore, selectors: Sequence[str] = 
     adoptions = []
     for nodeid in chosen:
         source, run = found[nodeid]
+        # A results folder is CI output: its tolerances are never adopted (a crafted `calibrated`
+        # entry would switch the test off); the golden being replaced keeps its own calibration.
         run = replace(run, meta=run.meta.with_(blessed_at=stamp, reason=reason or run.meta.get("reason", ""),
-                                               adopted_from=str(source)))
+                                               adopted_from=str(source), calibrated=None))
         target = golden.folder(nodeid)
         if dry_run:
             adoptions.append(Adoption(nodeid, source, target, "would adopt"))

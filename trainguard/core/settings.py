@@ -71,7 +71,20 @@ def from_marker(args: tuple[Any, ...], kwargs: Mapping[str, Any], ini_rtol: floa
                 check_tolerance_value("atol", spec["atol"], f"{where} metrics[{name!r}]") if "atol" in spec else atol,
             )
     explicit = any(k in kwargs for k in ("rtol", "atol", "exact"))
-    return GuardSettings(seed, Policy(default=default, exact=exact, metrics=per_metric), deterministic, explicit)
+    source = _source(kwargs.get("rtol") is not None, kwargs.get("atol") is not None, ini_rtol is not None,
+                     ini_atol is not None, exact)
+    sources = {name: "marker" for name in per_metric}
+    policy = Policy(default=default, exact=exact, metrics=per_metric, source=source, metric_sources=sources)
+    return GuardSettings(seed, policy, deterministic, explicit)
+
+
+def _source(marker_rtol: bool, marker_atol: bool, ini_rtol: bool, ini_atol: bool, exact: bool) -> str:
+    """Where the overall tolerance came from: one word when both parts agree, else "marker rtol, ini atol"."""
+    if exact:
+        return "marker"
+    rtol = "marker" if marker_rtol else "ini" if ini_rtol else "default"
+    atol = "marker" if marker_atol else "ini" if ini_atol else "default"
+    return rtol if rtol == atol else f"{rtol} rtol, {atol} atol"
 
 
 def calibrated_policy(policy: Policy, golden_meta: Mapping[str, Any]) -> Policy:
@@ -83,14 +96,14 @@ def calibrated_policy(policy: Policy, golden_meta: Mapping[str, Any]) -> Policy:
     cal = golden_meta.get("calibrated")
     if not isinstance(cal, Mapping):
         return policy
-    try:
-        default = Tolerance(float(cal["rtol"]), float(cal["atol"]))
-        metrics = {str(k): Tolerance(float(v["rtol"]), float(v["atol"]))
-                   for k, v in (cal.get("metrics") or {}).items()}
-    except (KeyError, TypeError, ValueError):
-        return policy
+    # GoldenMeta validated it on read (finite, non-negative, under the calibrated caps).
+    default = Tolerance(float(cal["rtol"]), float(cal["atol"]))
+    metrics = {str(k): Tolerance(float(v.get("rtol", default.rtol)), float(v.get("atol", default.atol)))
+               for k, v in (cal.get("metrics") or {}).items()}
+    sources = dict.fromkeys(metrics, "calibrated")
     metrics.update(policy.metrics or {})
-    return Policy(default=default, exact=policy.exact, metrics=metrics)
+    sources.update(policy.metric_sources or {})
+    return Policy(default=default, exact=policy.exact, metrics=metrics, source="calibrated", metric_sources=sources)
 
 
 def parse_ini_float(name: str, raw: Any) -> float | None:

@@ -20,7 +20,7 @@ import os
 import time
 import uuid
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any, Callable, Iterable
 
 from . import golden_format as fmt
 from .atomic import (
@@ -94,8 +94,10 @@ class GoldenStore:
         return sorted(found)
 
     # -- reading -------------------------------------------------------------------
-    def read(self, folder: str | os.PathLike[str]) -> Run:
+    def read(self, folder: str | os.PathLike[str], accept_format_1: bool = False) -> Run:
         """Read a golden folder as one consistent set. Never writes anything.
+
+        Format-1 files (no digest) are refused unless `accept_format_1` (upgrade only).
 
         Raises
         ------
@@ -124,7 +126,7 @@ class GoldenStore:
                 for kind in (fmt.METRICS_FILE, fmt.STATE_FILE):
                     if kind not in files:
                         raise GoldenCorruptError(folder / kind, "is missing while its sibling golden file exists")
-                reads = {kind: self._read_file(path, kind) for kind, path in files.items()}
+                reads = {kind: self._read_file(path, kind, accept_format_1) for kind, path in files.items()}
                 ids = [(kind, r.run_id) for kind, r in reads.items()]
                 if len({r for _, r in ids}) == 1:
                     return _run_from(files, reads)
@@ -150,12 +152,13 @@ class GoldenStore:
             return fmt.trace_from_table(path, got.table), got.meta
         return fmt.metrics_from_table(path, got.table), got.meta
 
-    def _read_file(self, path: Path, kind: str) -> fmt.FileRead:
-        return fmt.read_file(path, kind, self.max_bytes, self.commands)
+    def _read_file(self, path: Path, kind: str, accept_format_1: bool = False) -> fmt.FileRead:
+        return fmt.read_file(path, kind, self.max_bytes, self.commands, accept_format_1=accept_format_1)
 
     def format_versions(self, folder: Path) -> set[int]:
         """The format versions of a golden's files (one value for a golden trainguard wrote)."""
-        return {self._read_file(p, k).version for k, p in FileSet(folder, fmt.KINDS).resolve().items()}
+        return {self._read_file(p, k, accept_format_1=True).version
+                for k, p in FileSet(folder, fmt.KINDS).resolve().items()}
 
     # -- writing -------------------------------------------------------------------
     def _writable(self, folder: Path) -> None:
@@ -242,9 +245,13 @@ class GoldenStore:
         return count
 
     # -- upgrading -----------------------------------------------------------------
-    def upgrade(self) -> list[tuple[Path, str]]:
+    def upgrade(self, held_format_2: Callable[[Path], bool] | None = None) -> list[tuple[Path, str]]:
         """Convert every golden below the root to the current format, in place.
 
+        This is the one place format-1 goldens (no digest) are accepted, and it vouches for
+        their content: the caller must say so to its user. A folder whose files mix formats,
+        or whose format-1 file `held_format_2(path)` says was format 2 before (git history),
+        is refused: that is a downgrade, the way to hide an edit from the digest check.
         Reads (and so validates) every golden first and writes nothing if any is unusable.
         Then each older folder is rewritten as one set under its lock, with the same data and
         the same `trainguard.meta` bytes, plus a run id, the writer version and the digest.
@@ -256,8 +263,18 @@ class GoldenStore:
         folders = self.find()
         versions = {}
         for folder in folders:
-            self.read(folder)
+            self.read(folder, accept_format_1=True)
             versions[folder] = self.format_versions(folder)
+            if len(versions[folder]) > 1:
+                raise GoldenCorruptError(folder, "mixes golden formats 1 and 2: a format-2 golden partly rewritten as "
+                                         "format 1 (which has no digest) hides an edit; refusing to upgrade it",
+                                         "restore the folder from version control, or re-bless the test")
+            if held_format_2 is not None and 1 in versions[folder]:
+                for kind, path in FileSet(folder, fmt.KINDS).resolve().items():
+                    if held_format_2(path):
+                        raise GoldenCorruptError(path, "is format 1 now but was format 2 in the last commit: a "
+                                                 "downgrade hides edits from the digest check; refusing to upgrade it",
+                                                 f"restore it: git checkout HEAD -- {path}")
         out = []
         for folder in folders:
             if versions[folder] == {fmt.FORMAT_VERSION}:
@@ -281,7 +298,7 @@ class GoldenStore:
     def _upgraded(self, path: Path, kind: str, run_id: str) -> Any:
         import pyarrow as pa
 
-        got = self._read_file(path, kind)
+        got = self._read_file(path, kind, accept_format_1=True)
         schema = fmt.schema_of(kind)
         raw_meta = fmt.pq_metadata(path)
         columns = [got.table.column(f.name) if f.name in got.table.column_names else pa.nulls(got.table.num_rows, f.type)

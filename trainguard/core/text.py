@@ -7,7 +7,57 @@ show`, calibrate's report and bisect's summary.
 from __future__ import annotations
 
 import math
+import re
 from typing import Any, Callable, Iterable, Iterator, Mapping, Sequence
+
+#: C0 and C1 control characters, DEL, Unicode line/paragraph separators and bidirectional
+#: overrides: what a terminal obeys (\r rewrites a line, ESC starts a sequence) or a reader
+#: misreads (bidi overrides reorder text), and what may not appear raw in one table cell.
+_CONTROL = re.compile("[\x00-\x1f\x7f-\x9f\u2028\u2029\u200e\u200f\u202a-\u202e\u2066-\u2069]")
+_CONTROL_BUT_NEWLINE = re.compile("[\x00-\x09\x0b-\x1f\x7f-\x9f\u2028\u2029\u200e\u200f\u202a-\u202e\u2066-\u2069]")
+#: A line some hosted CI services execute as a "workflow command" (`::error::`, `::add-mask::`).
+_WORKFLOW_COMMAND = re.compile(r"^(\s*)::", re.MULTILINE)
+_MD_SPECIAL = re.compile(r"([\\`*_{}\[\]()#+!|~^$])")
+
+
+def _escape_char(m: re.Match[str]) -> str:
+    ch = m.group(0)
+    named = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
+    if ch in named:
+        return named[ch]
+    return f"\\x{ord(ch):02x}" if ord(ch) < 0x100 else f"\\u{ord(ch):04x}"
+
+
+def untrusted(value: Any) -> str:
+    """A string that came from a golden, result or fingerprint, safe inside one line of output.
+
+    Control characters (newlines included) are shown escaped (`\\r`, `\\x1b`), so the text can
+    neither start a new line nor move the cursor.
+
+    >>> untrusted("loss\\r::error::pwned")
+    'loss\\\\r::error::pwned'
+    """
+    return _CONTROL.sub(_escape_char, str(value))
+
+
+def safe_output(text: str) -> str:
+    """Whole output text on its way to a terminal or CI log: control characters other than
+    newlines escaped, and no line can start a CI workflow command (a backslash is put before `::`).
+
+    >>> safe_output("ok\\n::error::x")
+    'ok\\n\\\\::error::x'
+    """
+    return _WORKFLOW_COMMAND.sub(lambda m: m.group(1) + "\\::", _CONTROL_BUT_NEWLINE.sub(_escape_char, text))
+
+
+def md_escape(value: Any) -> str:
+    """Text for one Markdown table cell: escaped as `untrusted`, HTML and Markdown syntax neutralised.
+
+    >>> md_escape("a|b <img src=x> `c`")
+    'a\\\\|b &lt;img src=x&gt; \\\\`c\\\\`'
+    """
+    text = untrusted(value).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+    return _WORKFLOW_COMMAND.sub(lambda m: m.group(1) + "\\::", _MD_SPECIAL.sub(r"\\\1", text))
 
 
 def table(headers: Sequence[str], rows: Iterable[Sequence[Any]], indent: str = "  ") -> str:
@@ -32,7 +82,7 @@ def _cell(value: Any) -> str:
         return "-"
     if isinstance(value, float):
         return fmt(value)
-    return str(value)
+    return untrusted(value)  # one cell, one line: names and reasons from goldens cannot break the table
 
 
 def fmt(x: float | int | None) -> str:
@@ -69,7 +119,7 @@ def flatten(data: Any, prefix: str = "") -> list[tuple[str, Any]]:
 
 def join_names(names: Sequence[str], limit: int, more: str = " and {} more") -> str:
     """The first `limit` names, comma-separated, then how many were left out."""
-    shown = ", ".join(names[:limit])
+    shown = ", ".join(untrusted(n) for n in names[:limit])
     return shown + (more.format(len(names) - limit) if len(names) > limit else "")
 
 

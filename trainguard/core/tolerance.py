@@ -16,6 +16,7 @@ import numpy as np
 
 from .checksum import sketch_distance
 from .errors import UsageError
+from .meta import MAX_ATOL, MAX_RTOL
 from .records import Summarized
 from .verdicts import CHANGED, CLOSE, IDENTICAL
 
@@ -37,18 +38,40 @@ class Tolerance:
         return f"rtol={self.rtol:g}, atol={self.atol:g}"
 
 
+#: Where a tolerance in force came from, as reports name it.
+SOURCES = ("marker", "calibrated", "ini", "default", "command line", "golden")
+
+
 @dataclass(frozen=True)
 class Policy:
-    """The tolerances in force for one guarded test."""
+    """The tolerances in force for one guarded test, and where they came from.
+
+    `source` names the origin of the overall tolerance: "marker", "calibrated" (the golden's
+    metadata, from `trainguard calibrate --write`), "ini", "default" (numpy.isclose's), "command
+    line" (`trainguard diff --rtol`) or "golden" (recorded at bless time); a mix reads "marker rtol,
+    ini atol". Reports print it beside the numbers, so a loosened tolerance is never invisible.
+    """
 
     default: Tolerance = Tolerance()
     exact: bool = False
     metrics: Mapping[str, Tolerance] = None  # type: ignore[assignment]
+    source: str = "default"
+    metric_sources: Mapping[str, str] = None  # type: ignore[assignment]
 
     def for_metric(self, name: str) -> Tolerance:
         if self.metrics and name in self.metrics:
             return self.metrics[name]
         return self.default
+
+    def describe(self) -> str:
+        """`rtol=1e-05, atol=1e-08 (from default)`, plus per-metric tolerances and theirs."""
+        if self.exact:
+            return f"exact (bitwise; from {self.source})"
+        text = f"{self.default.describe()} (from {self.source})"
+        for name, tol in sorted((self.metrics or {}).items()):
+            where = (self.metric_sources or {}).get(name, self.source)
+            text += f"; {name}: {tol.describe()} (from {where})"
+        return text
 
     def to_json(self) -> dict[str, Any]:
         """The form goldens record as metadata `tolerances` (and `calibrated` takes, without `exact`)."""
@@ -74,11 +97,12 @@ class Policy:
             if isinstance(spec, Mapping):
                 metrics[str(name)] = Tolerance(_number(spec.get("rtol"), default.rtol),
                                                _number(spec.get("atol"), default.atol))
-        return cls(default=default, exact=data.get("exact") is True, metrics=metrics)
+        return cls(default=default, exact=data.get("exact") is True, metrics=metrics, source="golden")
 
-    def with_default(self, default: Tolerance, keep_metrics: bool = True) -> Policy:
+    def with_default(self, default: Tolerance, keep_metrics: bool = True, source: str | None = None) -> Policy:
         """The same policy with another overall tolerance (per-metric ones dropped unless kept)."""
-        return Policy(default=default, exact=self.exact, metrics=self.metrics if keep_metrics else {})
+        return Policy(default=default, exact=self.exact, metrics=self.metrics if keep_metrics else {},
+                      source=source or self.source, metric_sources=self.metric_sources if keep_metrics else {})
 
 
 def _number(value: Any, fallback: float) -> float:
@@ -88,12 +112,16 @@ def _number(value: Any, fallback: float) -> float:
 
 
 def check_tolerance_value(name: str, value: Any, where: str) -> float:
-    """A tolerance must be a finite, non-negative real number."""
+    """A tolerance must be a finite, non-negative real number, no looser than its cap (meta.MAX_RTOL, MAX_ATOL)."""
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise UsageError(f"{where}: {name} must be a number, got {value!r}")
     value = float(value)
     if not math.isfinite(value) or value < 0:
         raise UsageError(f"{where}: {name} must be finite and >= 0, got {value!r}")
+    cap = MAX_ATOL if name.endswith("atol") else MAX_RTOL
+    if value > cap:
+        raise UsageError(f"{where}: {name}={value:g} is looser than trainguard allows ({cap:g}); a tolerance that "
+                         "loose guards nothing. To stop guarding this test, remove its trainguard marker")
     return value
 
 

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import shlex
 import sys
 from pathlib import Path
 from typing import Any, Sequence
@@ -15,10 +16,16 @@ from typing import Any, Sequence
 from ..core.errors import TrainguardError
 from ..core.project import default_golden_dir
 from ..core.text import flatten as _flatten
-from ..core.text import fmt, table
+from ..core.text import fmt, safe_output, table
 from ..tools.pytest_runs import PytestCommands
 
 EXIT_USAGE = 2
+
+
+def say(text: str = "", err: bool = False, flush: bool = False) -> None:
+    """Print text that may hold names, reasons or paths from goldens: control characters escaped,
+    no line able to start a CI workflow command (`core.text.safe_output`)."""
+    print(safe_output(text), file=sys.stderr if err else sys.stdout, flush=flush)
 
 
 # -- env -------------------------------------------------------------------------------
@@ -29,11 +36,11 @@ def cmd_env(args: argparse.Namespace) -> int:
 
     fp = fingerprint()
     if args.json:
-        print(json.dumps(fp, indent=2, sort_keys=True))
+        say(json.dumps(fp, indent=2, sort_keys=True))
         return 0
-    print("environment fingerprint (what trainguard stores with every golden):")
-    print(table(["key", "value"], _flatten(fp)))
-    print("\nnote: inside a guarded test trainguard also turns on deterministic mode; "
+    say("environment fingerprint (what trainguard stores with every golden):")
+    say(table(["key", "value"], _flatten(fp)))
+    say("\nnote: inside a guarded test trainguard also turns on deterministic mode; "
           "the 'deterministic' values above are this process's, outside any test.")
     return 0
 
@@ -41,20 +48,31 @@ def cmd_env(args: argparse.Namespace) -> int:
 # -- show ------------------------------------------------------------------------------
 
 
-def _show_meta(meta: dict[str, Any]) -> list[str]:
+def _tolerance_in_force(meta: Any) -> str:
+    """What a check against this golden uses when the marker sets no tolerance, and where it comes from."""
+    from ..core.settings import calibrated_policy
+    from ..core.tolerance import Policy
+
+    recorded = Policy.from_json(meta.get("tolerances"))
+    policy = calibrated_policy(recorded, meta)
+    if policy.source == "calibrated":
+        return (policy.describe() + "; used unless the marker sets rtol, atol or exact (then the marker's). "
+                f"At bless time: {recorded.describe()}")
+    return policy.describe().replace("(from golden)", "(recorded at bless time from the marker, ini or defaults)")
+
+
+def _show_meta(meta: Any) -> list[str]:
     lines = []
-    tol = meta.get("tolerances") or {}
     rows = [
         ("format version", meta.get("format_version")),
         ("test", meta.get("nodeid")),
         ("seed", meta.get("seed")),
         ("deterministic", meta.get("deterministic")),
-        ("tolerance", "exact (bitwise)" if tol.get("exact") else f"rtol={tol.get('rtol')}, atol={tol.get('atol')}"),
-        ("per-metric tolerance", ", ".join(f"{k}: rtol={v.get('rtol')}, atol={v.get('atol')}"
-                                           for k, v in (tol.get("metrics") or {}).items()) or None),
+        ("tolerance", _tolerance_in_force(meta)),
         ("stored values up to", meta.get("max_values")),
         ("blessed at", meta.get("blessed_at")),
         ("reason", meta.get("reason") or None),
+        ("adopted from", meta.get("adopted_from")),
     ]
     lines.append(table(["metadata", "value"], rows))
     fp = meta.get("fingerprint")
@@ -92,6 +110,15 @@ def _show_state(tensors: dict[str, Any]) -> list[str]:
                    "values stored"], rows)]
 
 
+def _show_trace(entries: list[Any]) -> list[str]:
+    steps = sorted({e.step for e in entries})
+    names = sorted({e.name for e in entries})
+    rows = [[e.step, e.stage, e.call, e.name, e.dtype, "x".join(map(str, e.shape)) or "scalar", e.sha256[:16],
+             fmt(e.l2)] for e in entries[:40]]
+    head = f"trace ({len(entries)} entries, {len(steps)} steps, {len(names)} tensors; first 40 shown):"
+    return [head, table(["step", "stage", "call", "name", "dtype", "shape", "sha256 (first 16)", "l2"], rows)]
+
+
 def _store(root: Path, read_only: bool = True, golden_dir_option: str | None = None) -> Any:
     from ..core.store import GoldenStore
 
@@ -105,18 +132,18 @@ def cmd_show(args: argparse.Namespace) -> int:
     if not path.exists():
         raise TrainguardError(f"{path}: no such file or folder")
     if path.is_file():
-        state = path.name == golden_format.STATE_FILE
-        records, meta = _store(path.parent).read_file(path, golden_format.STATE_FILE if state else
-                                                      golden_format.METRICS_FILE)
-        body = _show_state(records) if state else _show_metrics(records)
-        print(f"golden file {path}")
-        print("\n".join(_show_meta(meta) + [""] + body))
+        kind = path.name if path.name in golden_format.KINDS else golden_format.METRICS_FILE
+        records, meta = _store(path.parent).read_file(path, kind)
+        body = {golden_format.STATE_FILE: _show_state, golden_format.TRACE_FILE: _show_trace}.get(
+            kind, _show_metrics)(records)
+        say(f"golden file {path}")
+        say("\n".join(_show_meta(meta) + [""] + body))
         return 0
     store = _store(path)
     if store.exists(path):
         run = store.read(path)
-        print(f"golden {path}")
-        print("\n".join(_show_meta(run.meta) + [""] + _show_metrics(run.metrics) + [""] + _show_state(run.tensors)))
+        say(f"golden {path}")
+        say("\n".join(_show_meta(run.meta) + [""] + _show_metrics(run.metrics) + [""] + _show_state(run.tensors)))
         return 0
     found = store.find()
     if not found:
@@ -132,8 +159,8 @@ def cmd_show(args: argparse.Namespace) -> int:
         steps = max((len(s.steps) for s in run.metrics.values()), default=0)
         rows.append([str(folder.relative_to(path)), len(run.metrics), steps, len(run.tensors),
                      run.meta.get("blessed_at", "-"), run.meta.get("reason") or "-"])
-    print(f"{len(found)} golden folder(s) under {path} (show one for details: trainguard show FOLDER):")
-    print(table(["golden", "metrics", "steps", "state entries", "blessed at", "reason"], rows))
+    say(f"{len(found)} golden folder(s) under {path} (show one for details: trainguard show FOLDER):")
+    say(table(["golden", "metrics", "steps", "state entries", "blessed at", "reason"], rows))
     return 0
 
 
@@ -148,10 +175,10 @@ def cmd_bless(args: argparse.Namespace) -> int:
     adoptions = adopt(_store(Path(args.source)), _store(golden_dir, read_only=False, golden_dir_option=args.golden_dir),
                       args.nodeids, reason=args.reason or "", dry_run=args.dry_run, commands=commands)
     verb = "would adopt" if args.dry_run else "adopted"
-    print(f"{verb} {len(adoptions)} result(s) from {args.source} into {golden_dir}:")
-    print(table(["golden", "test", "from"], [[a.outcome, a.nodeid, str(a.source)] for a in adoptions]))
+    say(f"{verb} {len(adoptions)} result(s) from {args.source} into {golden_dir}:")
+    say(table(["golden", "test", "from"], [[a.outcome, a.nodeid, str(a.source)] for a in adoptions]))
     if not args.dry_run:
-        print("review and commit them, e.g.: git add " + str(golden_dir))
+        say("review and commit them, e.g.: git add " + str(golden_dir))
     return 0
 
 
@@ -162,19 +189,40 @@ def cmd_diff(args: argparse.Namespace) -> int:
     from ..core.report import describe_comparison
     from ..core.tolerance import Policy, Tolerance
 
-    a = _store(Path(args.a)).read(Path(args.a))
-    b = _store(Path(args.b)).read(Path(args.b))
-    recorded = Policy.from_json(a.meta.tolerances)
-    policy = recorded.with_default(
-        Tolerance(args.rtol if args.rtol is not None else recorded.default.rtol,
-                  args.atol if args.atol is not None else recorded.default.atol),
-        keep_metrics=args.rtol is None and args.atol is None)
-    if args.exact:
-        policy = replace(policy, exact=True)
+    from ..core.settings import calibrated_policy
+    from ..core.tolerance import check_tolerance_value
+
+    a, b = _read_golden(args.a), _read_golden(args.b)
+    # The reference's tolerance as a check would use it: calibrated if stored, else as recorded at bless.
+    recorded = calibrated_policy(Policy.from_json(a.meta.tolerances), a.meta)
+    if args.rtol is not None or args.atol is not None:
+        rtol = check_tolerance_value("rtol", args.rtol, "--rtol") if args.rtol is not None else recorded.default.rtol
+        atol = check_tolerance_value("atol", args.atol, "--atol") if args.atol is not None else recorded.default.atol
+        recorded = recorded.with_default(Tolerance(rtol, atol), keep_metrics=False, source="command line")
+    policy = replace(recorded, exact=True, source="command line") if args.exact else recorded
     cmp = compare(a, b, policy)
-    print(f"trainguard diff: {args.a} (reference) vs {args.b}")
-    print(describe_comparison(cmp))
+    say(f"trainguard diff: {args.a} (reference) vs {args.b}")
+    say(describe_comparison(cmp))
     return 1 if cmp.failed else 0
+
+
+def _read_golden(raw: str) -> Any:
+    """One golden (or result) folder for diff; a folder of goldens gets a message that says what to give."""
+    from ..core.errors import GoldenMissingError
+
+    path = Path(raw)
+    if not path.exists():
+        raise TrainguardError(f"{path}: no such folder")
+    store = _store(path)
+    try:
+        return store.read(path)
+    except GoldenMissingError:
+        found = store.find() if path.is_dir() else []
+        if found:
+            raise TrainguardError(f"{path}: is a folder of {len(found)} goldens, not one golden; diff compares one "
+                                  f"test's golden folder with another, e.g. trainguard diff {found[0]} "
+                                  f"OTHER/{found[0].relative_to(path)}") from None
+        raise
 
 
 # -- bisect ----------------------------------------------------------------------------
@@ -184,9 +232,9 @@ def cmd_bisect(args: argparse.Namespace) -> int:
     from ..tools.bisect import describe, run_bisect
 
     outcome = run_bisect(args.good, args.bad, args.nodeids, setup=args.setup, reference=args.reference,
-                         golden_dir=args.golden_dir, keep=args.keep, echo=lambda line: print(line, flush=True))
-    print()
-    print(describe(outcome))
+                         golden_dir=args.golden_dir, keep=args.keep, echo=lambda line: say(line, flush=True))
+    say()
+    say(describe(outcome))
     return 0 if outcome.found else 1
 
 
@@ -205,7 +253,7 @@ def cmd_merge_reports(args: argparse.Namespace) -> int:
     from ..core.report_files import merge_reports
 
     path, count = merge_reports(args.dirs, args.out)
-    print(f"merged {count} row(s) from {len(args.dirs)} report folder(s) into {path}")
+    say(f"merged {count} row(s) from {len(args.dirs)} report folder(s) into {path}")
     return 0
 
 
@@ -269,22 +317,22 @@ def cmd_prune(args: argparse.Namespace) -> int:
     used = {store.folder(nodeid) for nodeid in nodeids}
     found = store.find()
     unused = [folder for folder in found if folder not in used]
-    print(f"{len(found)} golden folder(s) under {golden_dir}, {len(nodeids)} test(s) collected: "
+    say(f"{len(found)} golden folder(s) under {golden_dir}, {len(nodeids)} test(s) collected: "
           f"{len(unused)} golden folder(s) used by no collected test")
     if not unused:
         return 0
     if not args.delete:
         for folder in unused:
-            print(f"  {_shown(folder)}")
+            say(f"  {_shown(folder)}")
         extra = " ".join(pytest_args)
-        print("remove them with: trainguard prune --delete"
+        say("remove them with: trainguard prune --delete"
               + (f" --golden-dir {args.golden_dir}" if args.golden_dir else "") + (f" {extra}" if extra else ""))
         return 1
     for folder in unused:
         if store.remove(folder):
-            print(f"  removed {_shown(folder)}")
+            say(f"  removed {_shown(folder)}")
         else:
-            print(f"  skipped {_shown(folder)} (not a real folder inside {golden_dir}: a symbolic link is on its path)")
+            say(f"  skipped {_shown(folder)} (not a real folder inside {golden_dir}: a symbolic link is on its path)")
     return 0
 
 
@@ -294,14 +342,21 @@ def cmd_prune(args: argparse.Namespace) -> int:
 def cmd_upgrade_goldens(args: argparse.Namespace) -> int:
     from ..core import golden_format
 
+    from ..tools.git_history import held_format_2
+
     root = Path(args.dir) if args.dir else default_golden_dir()
-    done = _store(root, read_only=False).upgrade()
+    store = _store(root, read_only=False)
+    done = store.upgrade(held_format_2=held_format_2(store.max_bytes))
     if not done:
         raise TrainguardError(f"{root}: holds no golden files (no {golden_format.METRICS_FILE} below it)")
     upgraded = sum(1 for _, outcome in done if outcome != "current")
-    print(f"{upgraded} of {len(done)} golden folder(s) under {root} upgraded to format {golden_format.FORMAT_VERSION}"
+    if upgraded:
+        say("warning: format-1 goldens carry no digest, so trainguard could not check that nobody edited them; "
+            "this upgrade vouches for their content. Review them before committing: git diff --stat "
+            + shlex.quote(str(root)))
+    say(f"{upgraded} of {len(done)} golden folder(s) under {root} upgraded to format {golden_format.FORMAT_VERSION}"
           + (" (nothing to do)" if not upgraded else ""))
-    print(table(["golden", "format"], [[str(f.relative_to(root)), o] for f, o in done]))
+    say(table(["golden", "format"], [[str(f.relative_to(root)), o] for f, o in done]))
     return 0
 
 
@@ -404,13 +459,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return int(args.func(args))
     except TrainguardError as exc:
-        print(f"trainguard {args.command}: {exc}", file=sys.stderr)
+        say(f"trainguard {args.command}: {exc}", err=True)
         return EXIT_USAGE
     except BrokenPipeError:  # output piped into head or less, closed early
         sys.stderr.close()
         return 0
     except KeyboardInterrupt:
-        print("trainguard: interrupted", file=sys.stderr)
+        say("trainguard: interrupted", err=True)
         return 130
 
 

@@ -289,13 +289,33 @@ def calibrate(nodeid: str, runs: int = DEFAULT_RUNS, safety: float = DEFAULT_SAF
     if golden_problems:
         out(f"\n--write: nothing written to {shown}: with the golden as it is, the test would still fail.")
         return 1
+    too_loose = _over_caps(cal)
+    if too_loose:
+        out(f"\n--write: nothing written to {shown}: the proposal is looser than a calibrated tolerance may be "
+            f"({too_loose}). Noise from thread counts and kernel choice stays far below that; a spread this large "
+            "means the test is sensitive to something real (a near-zero value, an unseeded source): look at the "
+            "largest differences above, or set a tolerance in the marker, where reviewers see it.")
+        return 1
     write_calibration(folder, cal.metadata(), store)
     out(f"\n--write: stored calibrated tolerances in {shown} (metadata 'calibrated': rtol={cal.proposal.rtol:g}, "
         f"atol={cal.proposal.atol:g}"
         + (f", per metric {', '.join(sorted(cal.metric_proposals))}" if cal.metric_proposals else "")
         + "); the next pytest run compares with them unless the marker sets rtol, atol or exact itself. "
-        "A bless that rewrites this golden drops them: calibrate again afterwards.")
+        "A re-bless keeps them; run calibrate --write again to refresh them.")
     if cal.current_exact:
         out("  note: the golden records exact=True from the marker, which takes precedence over calibrated "
             "tolerances; remove exact=True from the marker for them to apply.")
     return 0
+
+
+def _over_caps(cal: Any) -> str:
+    """Which proposed tolerance exceeds the calibrated caps (meta.MAX_CALIBRATED_*), or ''."""
+    from ..core.meta import MAX_CALIBRATED_ATOL, MAX_CALIBRATED_RTOL
+
+    proposals = [("overall", cal.proposal), *sorted(cal.metric_proposals.items())]
+    for name, p in proposals:
+        if p.rtol > MAX_CALIBRATED_RTOL:
+            return f"{name} rtol={p.rtol:g} > {MAX_CALIBRATED_RTOL:g}"
+        if p.atol > MAX_CALIBRATED_ATOL:
+            return f"{name} atol={p.atol:g} > {MAX_CALIBRATED_ATOL:g}"
+    return ""
