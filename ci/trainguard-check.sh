@@ -10,6 +10,11 @@
 #   $TRAINGUARD_REPORT_DIR   summary.md (a Markdown table for the PR or the job summary),
 #                            summary.json, and plots of changed trajectories
 # Upload both folders as artifacts. Exits with pytest's status: non-zero on any change.
+#
+# With TRAINGUARD_AUDIT_SINCE=REV (e.g. origin/main) it also runs `trainguard audit --since REV`
+# and writes $TRAINGUARD_REPORT_DIR/audit.md: goldens added, removed or re-blessed, tolerances
+# loosened or tightened. A loosened tolerance or a removed golden fails the check unless
+# TRAINGUARD_AUDIT_ACCEPT=1 (set it from a pull-request label, after a second review).
 set -uo pipefail
 
 RESULTS_DIR="${TRAINGUARD_RESULTS_DIR:-trainguard-results}"
@@ -19,7 +24,7 @@ PYTHON="${PYTHON:-python}"
 rm -rf "$RESULTS_DIR" "$REPORT_DIR"
 mkdir -p "$RESULTS_DIR" "$REPORT_DIR"
 
-"$PYTHON" -m pytest --trainguard-results "$RESULTS_DIR" --trainguard-report "$REPORT_DIR" "$@"
+"$PYTHON" -m pytest --trainguard-results="$RESULTS_DIR" --trainguard-report="$REPORT_DIR" "$@"
 status=$?
 
 if [ -f "$REPORT_DIR/summary.md" ]; then
@@ -27,6 +32,24 @@ if [ -f "$REPORT_DIR/summary.md" ]; then
     # Job summaries: GitHub Actions reads GITHUB_STEP_SUMMARY; other services ignore it.
     if [ -n "${GITHUB_STEP_SUMMARY:-}" ]; then
         cat "$REPORT_DIR/summary.md" >> "$GITHUB_STEP_SUMMARY"
+    fi
+fi
+if [ -n "${TRAINGUARD_AUDIT_SINCE:-}" ]; then
+    "$PYTHON" -m trainguard audit --since "$TRAINGUARD_AUDIT_SINCE" --markdown --output "$REPORT_DIR/audit.md"
+    audit_status=$?
+    if [ -f "$REPORT_DIR/audit.md" ]; then
+        cat "$REPORT_DIR/audit.md"
+        if [ -n "${GITHUB_STEP_SUMMARY:-}" ]; then
+            cat "$REPORT_DIR/audit.md" >> "$GITHUB_STEP_SUMMARY"
+        fi
+    fi
+    if [ "$audit_status" -ne 0 ]; then
+        if [ "${TRAINGUARD_AUDIT_ACCEPT:-}" = "1" ] && [ "$audit_status" -eq 1 ]; then
+            echo "trainguard audit: loosened or removed guards accepted (TRAINGUARD_AUDIT_ACCEPT=1)"
+        else
+            echo "trainguard audit: a tolerance got looser or a golden was removed; a second reviewer must accept it"
+            [ "$status" -eq 0 ] && status=$audit_status
+        fi
     fi
 fi
 if [ "$status" -ne 0 ] && [ -n "$(ls -A "$RESULTS_DIR" 2>/dev/null)" ]; then

@@ -148,7 +148,7 @@ def history(tmp_path_factory) -> dict[str, object]:
     shas[8] = commit(repo, "Re-bless winch golden after tolerance review")
     shas[9] = commit(repo, "Tune winch momentum for smoother starts", {"winch.py": winch(momentum="0.93")})
     reblessed = repo.parent / "golden-093"
-    rebless = pytest_in(repo, "--trainguard-bless", "--trainguard-golden-dir", str(reblessed), "test_winch.py")
+    rebless = pytest_in(repo, "--trainguard-bless", f"--trainguard-golden-dir={reblessed}", "test_winch.py")
     assert rebless.returncode == 0, rebless.stdout + rebless.stderr
     shas[10] = commit(repo, "Add heater tests", {"test_heater.py": "import heater\n\n\ndef test_watts():\n"
                                                                    "    assert heater.watts(2) == 80\n"})
@@ -362,13 +362,13 @@ def test_failure_report_points_at_the_real_golden_dir_not_the_frozen_copy():
     work = Path("/tmp/trainguard-bisect-ab12cd")
     lines = [
         "trainguard: t.py::t changed against its golden ../../trainguard-bisect-ab12cd/reference/golden/t.py/t",
-        "  pytest --trainguard-bless --trainguard-reason 'why' --trainguard-golden-dir "
-        "/tmp/trainguard-bisect-ab12cd/reference/golden t.py::t",
+        "  pytest --trainguard-bless --trainguard-reason 'why' "
+        "--trainguard-golden-dir=/tmp/trainguard-bisect-ab12cd/reference/golden t.py::t",
     ]
     assert unfreeze(lines, work, "golden", explicit=False) == [
         "trainguard: t.py::t changed against its golden golden/t.py/t",
         "  pytest --trainguard-bless --trainguard-reason 'why' t.py::t",
     ]
     assert unfreeze(lines[1:], work, "ml/goldens", explicit=True) == [
-        "  pytest --trainguard-bless --trainguard-reason 'why' --trainguard-golden-dir ml/goldens t.py::t",
+        "  pytest --trainguard-bless --trainguard-reason 'why' --trainguard-golden-dir=ml/goldens t.py::t",
     ]

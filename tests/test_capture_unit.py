@@ -359,7 +359,7 @@ def test_write_read_round_trip_is_equal(tmp_path):
     t.log(40, loss=float("nan"))
     t.state(model, optimizer=opt, shift=torch.tensor([float("nan"), -0.0]), big=torch.arange(6.0))
     run = t.to_run()
-    run.meta = {"seed": 7, "reason": "new proofing schedule", "nested": {"a": [1, 2]}}
+    run.meta = {"seed": 7, "reason": "new proofing schedule", "fingerprint": {"a": [1, 2]}}
     folder = tmp_path / "oven" / "golden"
     write_run(folder, run)
     assert sorted(p.name for p in folder.iterdir()) == ["metrics.parquet", "state.parquet"]

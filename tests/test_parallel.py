@@ -357,7 +357,7 @@ def assert_report(folder: Path, nodeids: list[str]) -> list[dict]:
 
 def test_bless_and_check_under_xdist_then_shards_and_merged_reports(canal: pytest.Pytester,
                                                                      monkeypatch: pytest.MonkeyPatch) -> None:
-    serial = run(canal, "-p", "no:xdist", "--trainguard-bless", "--trainguard-golden-dir", "g_serial")
+    serial = run(canal, "-p", "no:xdist", "--trainguard-bless", "--trainguard-golden-dir=g_serial")
     assert serial.ret == 0, text_of(serial)
     serial.assert_outcomes(passed=len(GUARDED) + len(UNGUARDED))
 
@@ -371,7 +371,7 @@ def test_bless_and_check_under_xdist_then_shards_and_merged_reports(canal: pytes
     # --dist loadgroup, with the node-id renaming pytest-xdist does there on pytest < 9.2
     monkeypatch.setenv("CANAL_MIMIC_LOADGROUP", "1")
     grouped = run(canal, "-n", "2", "--dist", "loadgroup", "-v", "--trainguard-bless",
-                  "--trainguard-golden-dir", "g_group")
+                  "--trainguard-golden-dir=g_group")
     assert grouped.ret == 0, text_of(grouped)
     grouped.assert_outcomes(passed=len(GUARDED) + len(UNGUARDED))
     assert "test_chambers.py::test_gate_upper@gates" in grouped.stdout.str()  # the renaming took place
@@ -388,7 +388,7 @@ def test_bless_and_check_under_xdist_then_shards_and_merged_reports(canal: pytes
     # -- checking the goldens blessed under -n 2, with changes planted, under -n 2: one report, one summary
     (canal.path / "knobs.json").write_text(json.dumps(PLANTED))
 
-    checked = run(canal, "-n", "2", "--trainguard-report", "rep_all", "--trainguard-results", "results")
+    checked = run(canal, "-n", "2", "--trainguard-report=rep_all", "--trainguard-results=results")
     assert checked.ret == 1, text_of(checked)
     checked.assert_outcomes(passed=len(GUARDED) + len(UNGUARDED) - len(CHANGED), failed=len(CHANGED))
     section = summary_section(checked)
@@ -411,7 +411,7 @@ def test_bless_and_check_under_xdist_then_shards_and_merged_reports(canal: pytes
     # -- the same check as two CI shards, each with its own report folder; guarded tests only are split
     selected = {}
     for k in (1, 2):
-        shard = run(canal, "-p", "no:xdist", "-v", "--trainguard-shard", f"{k}/2", "--trainguard-report", f"rep_{k}")
+        shard = run(canal, "-p", "no:xdist", "-v", "--trainguard-shard", f"{k}/2", f"--trainguard-report=rep_{k}")
         ran = set(re.findall(r"^(\S+::\S+(?: \S+\])?) (?:PASSED|FAILED)", shard.stdout.str(), re.M))
         assert set(UNGUARDED) <= ran  # unguarded tests are never deselected
         selected[k] = sorted(ran & set(GUARDED))

@@ -347,11 +347,11 @@ def test_missing_golden_prints_the_exact_bless_command(pytester: pytest.Pytester
     pytester.makepyfile(test_depot=DEPOT_TESTS)
     store = "store/tram goldens"  # a space, so the command must quote it
 
-    result = run(pytester, "--trainguard-golden-dir", store)
+    result = run(pytester, f"--trainguard-golden-dir={store}")
     result.assert_outcomes(failed=1)
     text = sections(result)["test_tram_delay"]
     command = ("pytest --trainguard-bless --trainguard-reason 'describe the intended change' "
-               "--trainguard-golden-dir 'store/tram goldens' test_depot.py::test_tram_delay")
+               "'--trainguard-golden-dir=store/tram goldens' test_depot.py::test_tram_delay")
     assert "has no golden yet" in text and "never creates its golden silently" in text
     assert command in text
     assert_no_library_traceback(text)

@@ -160,7 +160,7 @@ def test_repeat_finds_nondeterministic_tests_and_passes_deterministic_ones(pytes
     ])
 
     # checking: the deterministic test matches its golden on all three runs; a report counts the rest
-    result = run(pytester, "--trainguard-repeat", "3", "--trainguard-report", "report", "--trainguard-results", "res")
+    result = run(pytester, "--trainguard-repeat", "3", "--trainguard-report=report", "--trainguard-results=res")
     assert outcomes(result)["test_greenhouse.py::test_vent_steady"] == "PASSED"
     result.assert_outcomes(passed=1, failed=4)
     result.stdout.fnmatch_lines(["guarded tests checked: 4 (1 identical, 3 nondeterministic)"])

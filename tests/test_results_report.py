@@ -149,13 +149,13 @@ def orchard(tmp_path_factory):
     set_fingerprint_torch(golden_folder(goldens, STEADY), FAKE_TORCH)
     before = snapshot(goldens)
 
-    checked = run_pytest(root, "--trainguard-results", "results", "--trainguard-report", "report", change=True)
+    checked = run_pytest(root, "--trainguard-results=results", "--trainguard-report=report", change=True)
 
     # A stub that hides matplotlib: first on PYTHONPATH, so `import matplotlib` raises ImportError.
     stub = tmp_path_factory.mktemp("no-matplotlib")
     (stub / "matplotlib").mkdir()
     (stub / "matplotlib" / "__init__.py").write_text('raise ImportError("matplotlib hidden by the orchard test")\n')
-    no_plots = run_pytest(root, "--trainguard-report", "report-no-plots", change=True, pythonpath_first=stub)
+    no_plots = run_pytest(root, "--trainguard-report=report-no-plots", change=True, pythonpath_first=stub)
     assert snapshot(goldens) == before, "a checking run must never write goldens"
     return SimpleNamespace(root=root, goldens=goldens, results=root / "results", report=root / "report",
                            checked=checked, no_plots=no_plots, before=before)

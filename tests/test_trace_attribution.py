@@ -479,7 +479,7 @@ def test_each_planted_change_is_attributed_to_its_stage_and_step(pytester: pytes
     assert {"fc1.weight", "fc2.bias", "state fc1.weight.n_iter", "state fc1.weight.func_evals"} <= updated
 
     monkeypatch.setenv("GREENHOUSE_PLANTS", ALL_PLANTS)
-    planted = pytester.runpytest_subprocess(*flags, "--junitxml=planted.xml", "--trainguard-report", "report")
+    planted = pytester.runpytest_subprocess(*flags, "--junitxml=planted.xml", "--trainguard-report=report")
     results = _junit(pytester.path / "planted.xml")
     wrong = {}
     for test, expected in EXPECTED.items():

@@ -20,6 +20,7 @@ import contextlib
 import errno
 import json
 import os
+import re
 import time
 import uuid
 from pathlib import Path
@@ -37,6 +38,25 @@ WRITE_LOCK_TIMEOUT = 120.0
 READ_LOCK_TIMEOUT = 30.0
 #: A commit record is a few hundred bytes; anything much larger is not one of ours.
 _MAX_COMMIT_BYTES = 64 * 1024
+#: Run ids and temp-file names exactly as `FileSet.write` and `temp_path` make them.
+_RUN_ID = re.compile(r"[0-9a-f]{32}\Z")
+_TEMP_SUFFIX = re.compile(r"\.[0-9]{1,10}\.[0-9a-f]{12}\Z")
+
+
+def write_error(exc: OSError, path: Path, kept: str) -> GoldenError:
+    """A failed write as a message that says what went wrong, what is intact and what to do."""
+    if exc.errno == errno.ENOSPC:
+        problem, fix = "no space left on the device", f"free space on the disk that holds {path}, then run it again"
+    elif exc.errno == errno.EFBIG:
+        problem, fix = ("a file grew past the size this process may write (ulimit -f, or the file system's limit)",
+                        "raise the limit (ulimit -f unlimited) or write to another disk, then run it again")
+    elif exc.errno == errno.EDQUOT:
+        problem, fix = "the disk quota is exhausted", f"free space in your quota on the disk that holds {path}"
+    elif exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+        problem, fix = f"no permission to write there ({short_error(exc)})", "make the folder writable"
+    else:
+        problem, fix = f"writing failed ({short_error(exc)})", "fix the cause above, then run it again"
+    return GoldenError(path, f"could not be written: {problem}; {kept}", fix)
 
 
 def short_error(exc: BaseException) -> str:
@@ -248,14 +268,16 @@ class FileSet:
             record = json.loads(raw.decode("utf-8"))
         except (UnicodeDecodeError, ValueError, RecursionError):
             raise GoldenCorruptError(path, "is not valid JSON") from None
-        ok = (isinstance(record, dict) and isinstance(record.get("run_id"), str)
-              and isinstance(record.get("replace"), dict) and isinstance(record.get("remove"), list))
+        # Exactly the shape `_commit` writes: three keys, a 32-hex run id, temp names made by `temp_path`.
+        ok = (isinstance(record, dict) and set(record) == {"run_id", "replace", "remove"}
+              and isinstance(record["run_id"], str) and bool(_RUN_ID.match(record["run_id"]))
+              and isinstance(record["replace"], dict) and isinstance(record["remove"], list))
         if ok:
             for final, tmp in record["replace"].items():
                 ok = ok and final in self.names and isinstance(tmp, str) and tmp.startswith(TEMP_PREFIX + final + ".") \
-                    and "/" not in tmp and "\\" not in tmp and "\x00" not in tmp and len(tmp) < 200
+                    and bool(_TEMP_SUFFIX.match(tmp[len(TEMP_PREFIX + final):]))
             ok = ok and all(isinstance(r, str) and r in self.names and r not in record["replace"]
-                            for r in record["remove"])
+                            for r in record["remove"]) and len(set(record["remove"])) == len(record["remove"])
         if not ok:
             raise GoldenCorruptError(path, "is not a valid trainguard commit record", "remove it, then bless again")
         return record
@@ -275,6 +297,31 @@ class FileSet:
 
 
 # -- confinement ---------------------------------------------------------------------
+
+
+def check_root(root: Path, what: str) -> None:
+    """Refuse to write into a root folder that is a symbolic link (writes would land wherever it points)."""
+    if root.is_symlink():
+        raise GoldenError(root, f"is a symbolic link; trainguard does not write {what} through links",
+                          f"give the real folder instead: {os.path.realpath(root)}")
+
+
+def write_confined(root: Path, relpath: str, data: bytes | str | Callable[[Path], None], what: str,
+                   fsync: bool = False) -> Path:
+    """Write `root/relpath` atomically, refusing a link at the root or anywhere below it on the way."""
+    check_root(root, what)
+    target = root / relpath
+    root.mkdir(parents=True, exist_ok=True)
+    check_confined(target.parent, root)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    check_confined(target.parent, root)
+    if target.is_symlink():
+        raise GoldenError(target, "is a symbolic link; trainguard does not write through links", "remove the link")
+    try:
+        write_atomic(target, data, fsync=fsync)
+    except OSError as exc:
+        raise write_error(exc, target, "nothing was replaced") from None
+    return target
 
 
 def check_confined(folder: Path, root: str | os.PathLike[str] | None) -> None:

@@ -59,7 +59,7 @@ KEY_PREFIX = b"trainguard."
 #: are kilobytes to a few MiB (values are kept only for tensors up to `trainguard_max_values`).
 DEFAULT_MAX_FILE_BYTES = 32 * 1024 * 1024
 #: Decoded data may be at most this many times the file size limit (see `read_limits`).
-DECODED_FACTOR = 4
+DECODED_FACTOR = 2
 #: Longest shape and sketch trainguard writes (a sketch has `checksum.SKETCH_ROWS x width` values at most).
 MAX_DIMS = 64
 MAX_SKETCH = 4096
@@ -371,8 +371,8 @@ class FileRead:
 def read_limits(max_bytes: int) -> dict[str, int]:
     """The limits a read enforces, all derived from the file size limit B (`trainguard_max_file_mib`).
 
-    - decoded data (Arrow's memory, strings kept dictionary-encoded): at most 4 B;
-    - one page once decompressed: at most 4 B; decoded strings (all string cells): at most B;
+    - decoded data (Arrow's memory, strings kept dictionary-encoded): at most 2 B;
+    - one page once decompressed: at most 2 B; decoded strings (all string cells): at most B;
     - rows that become Python records (state entries, trace entries) and distinct metric
       names: at most B / 256 each (128 Ki at the default B = 32 MiB);
     - per cell: a shape of at most 64 dimensions, a sketch of at most 4096 values.
@@ -741,11 +741,14 @@ def _list_cells(table: Any, column: str) -> list[np.ndarray | None]:
     if column not in table.column_names:
         return [None] * table.num_rows
     col = table.column(column)
-    arr = pa.concat_arrays(col.chunks) if col.num_chunks else pa.array([], type=col.type)
-    offsets = arr.offsets.to_numpy()
-    flat = arr.values.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
-    nulls = arr.is_null().to_numpy(zero_copy_only=False)
-    return [None if nulls[i] else flat[offsets[i]:offsets[i + 1]].copy() for i in range(len(arr))]
+    out: list[np.ndarray | None] = []
+    for arr in (col.chunks if col.num_chunks else [pa.array([], type=col.type)]):
+        # Views into Arrow's buffer, read-only: no second copy of every stored value.
+        offsets = arr.offsets.to_numpy()
+        flat = arr.values.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
+        nulls = arr.is_null().to_numpy(zero_copy_only=False)
+        out.extend(None if nulls[i] else flat[offsets[i]:offsets[i + 1]] for i in range(len(arr)))
+    return out
 
 
 def tensors_from_table(path: Path, table: Any) -> dict[str, TensorRecord]:

@@ -10,16 +10,18 @@ from __future__ import annotations
 
 import json
 import os
-import shutil
+import re
+import stat
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 from urllib.parse import quote
 
-from .atomic import write_atomic
+from .atomic import check_root, write_confined
 from .errors import TrainguardError
 from .paths import safe_component
 from .report import environment_changes, first_divergence
+from .text import md_code, md_escape, untrusted
 from .verdicts import ATTENTION_ORDER, CHANGED, CLOSE, IDENTICAL, NONDETERMINISTIC
 
 if TYPE_CHECKING:
@@ -51,7 +53,9 @@ def row_for(result: GuardResult, report_dir: Path | None = None) -> dict[str, An
     cmp = result.comparison
     env = environment_changes(cmp.golden_meta.get("fingerprint"), cmp.new_meta.get("fingerprint")) if cmp else []
     divergence = getattr(result, "divergence", "") or first_divergence(cmp)  # set for nondeterministic runs
-    row = Row(result.nodeid, result.outcome, divergence, env, blessing=result.blessing)
+    # Names and fingerprint values come from goldens (pull requests): escaped here, once, for every consumer.
+    row = Row(result.nodeid, result.outcome, untrusted(divergence), [untrusted(e) for e in env],
+              blessing=result.blessing)
     data = asdict(row)
     data["folder"] = result.folder
     data["plots_unavailable"] = False
@@ -63,17 +67,13 @@ def row_for(result: GuardResult, report_dir: Path | None = None) -> dict[str, An
             data["plots_unavailable"] = True
         else:
             name = f"{PLOTS}/{safe_component(result.nodeid.replace('::', '__'))}.png"
-            if plot_trajectories(report_dir / name, result.nodeid, result.reference, result.run):
+            if plot_trajectories(report_dir, name, result.nodeid, result.reference, result.run):
                 data["plot"] = name
     return data
 
 
 def _row(data: dict[str, Any]) -> Row:
     return Row(**{k: data[k] for k in Row.__dataclass_fields__ if k in data})
-
-
-def _md_escape(text: str) -> str:
-    return text.replace("|", "\\|").replace("\n", " ")
 
 
 _ICON = {IDENTICAL: "identical", CLOSE: "within tolerance", CHANGED: "**changed**",
@@ -93,13 +93,13 @@ def summary_markdown(rows: list[Row], plots_note: str = "") -> str:
         lines += ["", "| test | outcome | first divergence | environment changes |", "| --- | --- | --- | --- |"]
         order = {outcome: i for i, outcome in enumerate(ATTENTION_ORDER)}
         for r in sorted(checks, key=lambda r: (order.get(r.outcome, len(order)), r.nodeid)):
-            div = _md_escape(r.divergence) or "-"
+            div = md_escape(r.divergence) or "-"
             if r.plot:
                 div += f" ([plot]({quote(r.plot)}))"
-            env = "<br>".join(_md_escape(e) for e in r.environment[:5]) or "-"
+            env = "<br>".join(md_escape(e) for e in r.environment[:5]) or "-"
             if len(r.environment) > 5:
                 env += f"<br>... {len(r.environment) - 5} more"
-            lines.append(f"| `{_md_escape(r.nodeid)}` | {_ICON.get(r.outcome, r.outcome)} | {div} | {env} |")
+            lines.append(f"| {md_code(r.nodeid)} | {_ICON.get(r.outcome, md_escape(r.outcome))} | {div} | {env} |")
     if plots_note:
         lines += ["", plots_note]
     return "\n".join(lines) + "\n"
@@ -112,13 +112,12 @@ PLOTS_NOTE = ("Plots of changed trajectories need matplotlib: `pip install 'trai
 def write_report(report_dir: str | os.PathLike[str], rows: list[dict[str, Any]]) -> Path:
     """Write summary.md and summary.json for `rows` (plots were written when the rows were made)."""
     report_dir = Path(report_dir)
-    report_dir.mkdir(parents=True, exist_ok=True)
     note = PLOTS_NOTE if any(r.get("plots_unavailable") for r in rows) else ""
     # Sorted: under pytest-xdist rows arrive in completion order, which changes from run to run.
     rows = sorted(rows, key=lambda r: (r["nodeid"], bool(r.get("blessing"))))
-    write_atomic(report_dir / SUMMARY_MD, summary_markdown([_row(r) for r in rows], note), fsync=False)
+    write_confined(report_dir, SUMMARY_MD, summary_markdown([_row(r) for r in rows], note), "reports")
     payload = {"format": REPORT_FORMAT, "rows": rows}
-    write_atomic(report_dir / SUMMARY_JSON, json.dumps(payload, indent=1, sort_keys=True), fsync=False)
+    write_confined(report_dir, SUMMARY_JSON, json.dumps(payload, indent=1, sort_keys=True), "reports")
     return report_dir / SUMMARY_MD
 
 
@@ -146,6 +145,7 @@ def merge_reports(sources: list[str | os.PathLike[str]], out: str | os.PathLike[
     Everything is read and checked before anything is written, so an error leaves `out` as it was.
     """
     out = Path(out)
+    check_root(out, "reports")
     seen: dict[Path, str] = {}
     for source in sources:
         real = Path(source).resolve()
@@ -168,25 +168,57 @@ def merge_reports(sources: list[str | os.PathLike[str]], out: str | os.PathLike[
                                       "were the shards overlapping?")
             plot = row.get("plot")
             if plot:
-                src = Path(source) / plot
-                if Path(plot).is_absolute() or ".." in Path(plot).parts or not src.is_file():
+                data = _plot_bytes(Path(source), str(plot))
+                if data is None:
                     row = {**row, "plot": None}
                 else:
                     name = Path(plot).name
                     if name in plot_names:  # distinct node ids, same escaped file name: keep both
                         name = f"{Path(name).stem}-{len(plot_names)}{Path(name).suffix}"
                     plot_names.add(name)
-                    copies.append((src, out / PLOTS / name))
+                    copies.append((data, f"{PLOTS}/{name}"))  # one plain component: _plot_bytes checked it
                     row = {**row, "plot": f"{PLOTS}/{name}"}
             merged[key] = row
-    for src, dst in copies:
-        dst.parent.mkdir(parents=True, exist_ok=True)
-        shutil.copyfile(src, dst)
+    for data, rel in copies:
+        write_confined(out, rel, data, "reports")
     rows = sorted(merged.values(), key=lambda r: r["nodeid"])
     return write_report(out, rows), len(rows)
 
 
-def plot_trajectories(path: Path, title: str, golden: Run, new: Run) -> bool:
+#: A plot trainguard writes is well under a megabyte; a larger "plot" in a shard's folder is not one.
+_MAX_PLOT_BYTES = 16 * 1024 * 1024
+
+
+#: Plot file names as `row_for` makes them (`paths.safe_component` output, which may hold %XX escapes).
+_PLOT_NAME = re.compile(r"[A-Za-z0-9_\-+=,@\[\]()%~][A-Za-z0-9_\-.+=,@\[\]()%~]{0,200}\.png\Z")
+
+
+def _plot_bytes(source: Path, plot: str) -> bytes | None:
+    """A shard's plot, read without following any link (at the file or on the way), or None to drop it."""
+    rel = Path(plot)
+    if rel.is_absolute() or ".." in rel.parts or len(rel.parts) != 2 or rel.parts[0] != PLOTS \
+            or not _PLOT_NAME.match(rel.parts[1]):
+        return None
+    current = source
+    for part in rel.parts:
+        current = current / part
+        if current.is_symlink():
+            return None
+    try:
+        fd = os.open(current, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0))
+    except OSError:
+        return None
+    try:
+        with os.fdopen(fd, "rb") as fh:
+            if not stat.S_ISREG(os.fstat(fh.fileno()).st_mode):
+                return None
+            data = fh.read(_MAX_PLOT_BYTES + 1)
+    except OSError:
+        return None
+    return data if len(data) <= _MAX_PLOT_BYTES else None
+
+
+def plot_trajectories(report_dir: Path, relpath: str, title: str, golden: Run, new: Run) -> bool:
     """Golden and new trajectory per metric, and |difference| on a log scale. False if nothing to plot."""
     import matplotlib
 
@@ -203,7 +235,7 @@ def plot_trajectories(path: Path, title: str, golden: Run, new: Run) -> bool:
         top, bottom = axes[0][col], axes[1][col]
         top.plot(g.steps, g.values, label="golden", color="#1f5f8b", linewidth=1.6)
         top.plot(n.steps, n.values, label="new", color="#d9731a", linewidth=1.2, linestyle="--")
-        top.set_title(name)
+        top.set_title(untrusted(name))
         top.legend(loc="best", fontsize=8)
         common, gi, ni = np.intersect1d(g.steps, n.steps, return_indices=True)
         diff = np.abs(n.values[ni] - g.values[gi])
@@ -214,11 +246,10 @@ def plot_trajectories(path: Path, title: str, golden: Run, new: Run) -> bool:
             bottom.text(0.5, 0.5, "identical", ha="center", va="center", transform=bottom.transAxes)
         bottom.set_xlabel("step")
         bottom.set_ylabel("|new - golden|")
-    fig.suptitle(title, fontsize=9)
+    fig.suptitle(untrusted(title), fontsize=9)
     fig.tight_layout()
-    path.parent.mkdir(parents=True, exist_ok=True)
     try:  # pytest-xdist workers write plots side by side: atomically, each its own
-        write_atomic(path, lambda tmp: fig.savefig(tmp, dpi=90, format="png"), fsync=False)
+        write_confined(report_dir, relpath, lambda tmp: fig.savefig(tmp, dpi=90, format="png"), "reports")
     finally:
         plt.close(fig)
     return True

@@ -31,8 +31,10 @@ from .atomic import (
     WRITE_LOCK_TIMEOUT,
     FileSet,
     check_confined,
+    check_root,
     folder_lock,
     short_error,
+    write_error,
 )
 from .errors import GoldenCorruptError, GoldenMissingError, UsageError
 from .fixes import FixCommands, current
@@ -123,13 +125,18 @@ class GoldenStore:
         try:
             for attempt in range(_READ_ATTEMPTS):
                 files = files_of.resolve()
+                record = files_of.read_commit()
                 for kind in (fmt.METRICS_FILE, fmt.STATE_FILE):
                     if kind not in files:
                         raise GoldenCorruptError(folder / kind, "is missing while its sibling golden file exists")
                 reads = {kind: self._read_file(path, kind, accept_format_1) for kind, path in files.items()}
                 ids = [(kind, r.run_id) for kind, r in reads.items()]
+                if record is not None and any(r != record["run_id"] for _, r in ids):
+                    raise GoldenCorruptError(folder / COMMIT_FILE, "names files of another write than its own (run id "
+                                             f"{record['run_id']}); trainguard never writes such a record",
+                                             f"remove {folder / COMMIT_FILE} and any .tmp-* files beside it")
                 if len({r for _, r in ids}) == 1:
-                    return _run_from(files, reads)
+                    return _run_from(files, reads, self.max_bytes)
                 time.sleep(0.005 * (attempt + 1))  # a writer without a lock (Windows) may be mid-switch
         finally:
             lock.__exit__(None, None, None)
@@ -150,7 +157,20 @@ class GoldenStore:
             return fmt.tensors_from_table(path, got.table), got.meta
         if kind == fmt.TRACE_FILE:
             return fmt.trace_from_table(path, got.table), got.meta
-        return fmt.metrics_from_table(path, got.table), got.meta
+        return fmt.metrics_from_table(path, got.table, fmt.read_limits(self.max_bytes)["records"]), got.meta
+
+    def read_snapshot(self, folder: Path, blobs: dict[str, bytes]) -> Run:
+        """A golden from file contents held in memory (a commit's, for `trainguard audit`), read with the
+        same limits and checks as a file on disk; format 1 is accepted, since history is only reported."""
+        files = {kind: folder / kind for kind in blobs}
+        for kind in (fmt.METRICS_FILE, fmt.STATE_FILE):
+            if kind not in blobs:
+                raise GoldenCorruptError(folder / kind, "is missing while its sibling golden file exists")
+        reads = {kind: fmt.read_file(files[kind], kind, self.max_bytes, self.commands, data=data, accept_format_1=True)
+                 for kind, data in blobs.items()}
+        if len({r.run_id for r in reads.values()}) != 1:
+            raise GoldenCorruptError(folder, "holds files from different writes; the set is mixed")
+        return _run_from(files, reads, self.max_bytes)
 
     def _read_file(self, path: Path, kind: str, accept_format_1: bool = False) -> fmt.FileRead:
         return fmt.read_file(path, kind, self.max_bytes, self.commands, accept_format_1=accept_format_1)
@@ -163,6 +183,7 @@ class GoldenStore:
     # -- writing -------------------------------------------------------------------
     def _writable(self, folder: Path) -> None:
         self._refuse_if_read_only(folder)
+        check_root(self.root, "goldens")
         check_confined(folder, self.root)
 
     def _refuse_if_read_only(self, path: Path) -> None:
@@ -177,7 +198,10 @@ class GoldenStore:
         """
         folder = Path(folder)
         self._writable(folder)
-        folder.mkdir(parents=True, exist_ok=True)
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise write_error(exc, folder, "no golden was changed") from None
         check_confined(folder, self.root)
         for kind in fmt.KINDS:
             path = folder / kind
@@ -194,7 +218,10 @@ class GoldenStore:
         with folder_lock(folder, exclusive=True, timeout=WRITE_LOCK_TIMEOUT):
             files.recover()
             files.clean()
-            files.write({kind: fmt.parquet_writer(kind, table) for kind, table in tables.items()}, run_id)
+            try:
+                files.write({kind: fmt.parquet_writer(kind, table) for kind, table in tables.items()}, run_id)
+            except OSError as exc:  # disk full, file too large: the temp files are gone, the old set stands
+                raise write_error(exc, folder, "the previous golden there is intact") from None
 
     def remove(self, folder: str | os.PathLike[str]) -> bool:
         """Delete one golden folder's files (links are unlinked, never followed), then the empty folders
@@ -307,8 +334,9 @@ class GoldenStore:
         return fmt.seal(kind, table, raw_meta.get(fmt.KEY_META, b"{}"), run_id)
 
 
-def _run_from(files: dict[str, Path], reads: dict[str, fmt.FileRead]) -> Run:
-    metrics = fmt.metrics_from_table(files[fmt.METRICS_FILE], reads[fmt.METRICS_FILE].table)
+def _run_from(files: dict[str, Path], reads: dict[str, fmt.FileRead], max_bytes: int) -> Run:
+    metrics = fmt.metrics_from_table(files[fmt.METRICS_FILE], reads[fmt.METRICS_FILE].table,
+                                     max_names=fmt.read_limits(max_bytes)["records"])
     tensors = fmt.tensors_from_table(files[fmt.STATE_FILE], reads[fmt.STATE_FILE].table)
     trace = (fmt.trace_from_table(files[fmt.TRACE_FILE], reads[fmt.TRACE_FILE].table)
              if fmt.TRACE_FILE in reads else None)

@@ -17,7 +17,8 @@ _CONTROL = re.compile("[\x00-\x1f\x7f-\x9f\u2028\u2029\u200e\u200f\u202a-\u202e\
 _CONTROL_BUT_NEWLINE = re.compile("[\x00-\x09\x0b-\x1f\x7f-\x9f\u2028\u2029\u200e\u200f\u202a-\u202e\u2066-\u2069]")
 #: A line some hosted CI services execute as a "workflow command" (`::error::`, `::add-mask::`).
 _WORKFLOW_COMMAND = re.compile(r"^(\s*)::", re.MULTILINE)
-_MD_SPECIAL = re.compile(r"([\\`*_{}\[\]()#+!|~^$])")
+#: What could break a table cell or make a link, an image or HTML out of untrusted text.
+_MD_SPECIAL = re.compile(r"([\\`\[\]|])")
 
 
 def _escape_char(m: re.Match[str]) -> str:
@@ -50,13 +51,27 @@ def safe_output(text: str) -> str:
     return _WORKFLOW_COMMAND.sub(lambda m: m.group(1) + "\\::", _CONTROL_BUT_NEWLINE.sub(_escape_char, text))
 
 
+def md_code(value: Any) -> str:
+    """Text as a Markdown code span for one table cell (node ids stay readable): escaped as `untrusted`,
+    `|` escaped (GFM splits table cells before it parses code spans), fenced by more backticks than it holds.
+
+    >>> md_code("t.py::test[a|b]")
+    '`t.py::test[a\\\\|b]`'
+    """
+    text = untrusted(value).replace("|", "\\|")
+    longest = max((len(run) for run in re.findall("`+", text)), default=0)
+    fence = "`" * (longest + 1)
+    pad = " " if text.startswith("`") or text.endswith("`") else ""
+    return f"{fence}{pad}{text}{pad}{fence}"
+
+
 def md_escape(value: Any) -> str:
     """Text for one Markdown table cell: escaped as `untrusted`, HTML and Markdown syntax neutralised.
 
-    >>> md_escape("a|b <img src=x> `c`")
-    'a\\\\|b &lt;img src=x&gt; \\\\`c\\\\`'
+    >>> md_escape("a|b <img src=x> `c` ![t](http://x)")
+    'a\\\\|b &lt;img src=x> \\\\`c\\\\` !\\\\[t\\\\](http://x)'
     """
-    text = untrusted(value).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+    text = untrusted(value).replace("<", "&lt;")  # no HTML tag can start without "<"
     return _WORKFLOW_COMMAND.sub(lambda m: m.group(1) + "\\::", _MD_SPECIAL.sub(r"\\\1", text))
 
 

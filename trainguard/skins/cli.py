@@ -187,10 +187,8 @@ def cmd_diff(args: argparse.Namespace) -> int:
 
     from ..core.comparison import compare
     from ..core.report import describe_comparison
-    from ..core.tolerance import Policy, Tolerance
-
     from ..core.settings import calibrated_policy
-    from ..core.tolerance import check_tolerance_value
+    from ..core.tolerance import Policy, Tolerance, check_tolerance_value
 
     a, b = _read_golden(args.a), _read_golden(args.b)
     # The reference's tolerance as a check would use it: calibrated if stored, else as recorded at bless.
@@ -223,6 +221,24 @@ def _read_golden(raw: str) -> Any:
                                   f"test's golden folder with another, e.g. trainguard diff {found[0]} "
                                   f"OTHER/{found[0].relative_to(path)}") from None
         raise
+
+
+# -- audit -----------------------------------------------------------------------------
+
+
+def cmd_audit(args: argparse.Namespace) -> int:
+    from ..core.atomic import write_atomic
+    from ..tools.audit import render_markdown, render_text, run_audit
+
+    golden_dir = Path(args.golden_dir) if args.golden_dir else default_golden_dir()
+    audit = run_audit(args.since, golden_dir)
+    text = render_markdown(audit) if args.markdown else render_text(audit)
+    if args.output:
+        write_atomic(Path(args.output), text, fsync=False)
+        say(f"audit written to {args.output} ({len(audit.findings)} change(s), {len(audit.flagged)} flagged)")
+    else:
+        say(text.rstrip("\n"))
+    return 1 if audit.flagged else 0
 
 
 # -- bisect ----------------------------------------------------------------------------
@@ -341,7 +357,6 @@ def cmd_prune(args: argparse.Namespace) -> int:
 
 def cmd_upgrade_goldens(args: argparse.Namespace) -> int:
     from ..core import golden_format
-
     from ..tools.git_history import held_format_2
 
     root = Path(args.dir) if args.dir else default_golden_dir()
@@ -397,6 +412,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--atol", type=float, help="absolute tolerance (default: the reference's)")
     p.add_argument("--exact", action="store_true", help="demand bitwise identity")
     p.set_defaults(func=cmd_diff)
+    p = sub.add_parser("audit", help="review aid: goldens added, removed or re-blessed since REV, tolerances "
+                       "loosened or tightened, entries gone; exit 1 when something was loosened or removed")
+    p.add_argument("--since", required=True, metavar="REV", help="the revision to compare with, e.g. origin/main")
+    p.add_argument("--golden-dir", metavar="DIR",
+                   help="golden folder (default: the ini option trainguard_golden_dir, else ./golden)")
+    p.add_argument("--markdown", action="store_true", help="print a Markdown table for a pull-request comment")
+    p.add_argument("--output", metavar="FILE", help="write the report to FILE instead of printing it")
+    p.set_defaults(func=cmd_audit)
     p = sub.add_parser("bisect", help="find the first commit at which guarded tests stop matching (git bisect)")
     p.add_argument("--good", required=True, metavar="REV", help="a revision whose tests match the reference")
     p.add_argument("--bad", required=True, metavar="REV", help="a later revision whose tests have changed")

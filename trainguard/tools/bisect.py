@@ -562,9 +562,9 @@ def unfreeze(lines: Sequence[str], work: Path, golden_dir: str, explicit: bool) 
     temporary folder, which is gone when bisect ends. A re-bless belongs in the real golden dir.
     """
     frozen = re.escape(f"{work.name}/{REFERENCE_DIR}/") + r"\S*"
-    option = re.compile(r" --trainguard-golden-dir \S*" + frozen)
+    option = re.compile(r" '?--trainguard-golden-dir[= ]\S*" + frozen)
     path = re.compile(r"(?<!\S)\S*" + re.escape(f"{work.name}/{REFERENCE_DIR}/"))
-    replacement = f" --trainguard-golden-dir {shlex.quote(golden_dir)}" if explicit else ""
+    replacement = f" {shlex.quote('--trainguard-golden-dir=' + golden_dir)}" if explicit else ""
     out = []
     for line in lines:
         line = option.sub(lambda _: replacement, line)

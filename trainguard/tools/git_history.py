@@ -105,3 +105,11 @@ def held_format_2(max_bytes: int):  # type: ignore[no-untyped-def]
         return version is not None and version >= 2
 
     return check
+
+
+def changed_files(root: Path, rev: str) -> list[str]:
+    """Tracked files that differ between `rev` and the work tree, plus untracked ones, '/'-separated."""
+    diff = _git(["diff", "--name-only", "-z", "--no-renames", rev, "--"], root).stdout
+    untracked = _git(["ls-files", "--others", "--exclude-standard", "-z"], root).stdout
+    names = {p for p in (diff + b"\0" + untracked).decode("utf-8", "surrogateescape").split("\0") if p}
+    return sorted(names)

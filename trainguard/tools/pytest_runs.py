@@ -42,7 +42,7 @@ class PytestCommands:
     def bless(self, nodeid: str) -> str:
         parts = ["pytest", "--trainguard-bless", "--trainguard-reason", REASON_PLACEHOLDER]
         if self.golden_dir_option:
-            parts += ["--trainguard-golden-dir", shlex.quote(self.golden_dir_option)]
+            parts += [shlex.quote(f"--trainguard-golden-dir={self.golden_dir_option}")]
         parts.append(shlex.quote(nodeid))
         return " ".join(parts)
 
@@ -50,7 +50,7 @@ class PytestCommands:
         return "pytest --trainguard-bless --trainguard-reason '...'"
 
     def record_results(self, results_dir: str) -> str:
-        return f"pytest --trainguard-results {results_dir}"
+        return f"pytest {shlex.quote('--trainguard-results=' + results_dir)}"
 
 
 def shell_line(cmd: Sequence[str], env: Sequence[tuple[str, str]] = ()) -> str:
@@ -73,7 +73,7 @@ def pytest_argv(*args: str, plugin: str | None = None) -> list[str]:
 
 def bless_into(nodeid: str, golden_dir: Path, reason: str, *extra: str) -> list[str]:
     """Bless one test into a scratch golden dir (calibrate's runs)."""
-    return pytest_argv("--trainguard-bless", "--trainguard-golden-dir", str(golden_dir),
+    return pytest_argv("--trainguard-bless", f"--trainguard-golden-dir={golden_dir}",
                        "--trainguard-reason", reason, *extra, nodeid)
 
 
@@ -82,7 +82,7 @@ def check_against(nodeids: Sequence[str], golden_dir: Path, report_dir: Path) ->
 
     `-p trainguard` loads the plugin by its entry-point name even where plugin autoloading is off.
     """
-    return pytest_argv("--trainguard-golden-dir", str(golden_dir), "--trainguard-report", str(report_dir),
+    return pytest_argv(f"--trainguard-golden-dir={golden_dir}", f"--trainguard-report={report_dir}",
                        "--", *nodeids, plugin="trainguard")
 
 

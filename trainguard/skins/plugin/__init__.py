@@ -84,8 +84,26 @@ def pytest_configure(config: pytest.Config) -> None:
         manager.register(ReportPlugin(), ReportPlugin.NAME)  # xdist workers leave the report to the controller
 
 
+#: Options whose value is a folder. Given as two arguments (`--trainguard-golden-dir DIR`), pytest
+#: reads DIR as a test path while it chooses its rootdir, before this plugin is loaded: an existing
+#: DIR outside the project moves rootdir, which changes every node id and so every golden folder.
+PATH_OPTIONS = ("--trainguard-golden-dir", "--trainguard-results", "--trainguard-report")
+
+
+def check_path_options(args: list[str]) -> None:
+    """Refuse the two-argument form of the folder options, with the one-argument form as the fix."""
+    for i, arg in enumerate(args):
+        if arg in PATH_OPTIONS and i + 1 < len(args):
+            fixed = [*args[:i], f"{arg}={args[i + 1]}", *args[i + 2:]]
+            raise pytest.UsageError(
+                f"write {arg}={args[i + 1]} (with '='): as two arguments, pytest takes {args[i + 1]} for a test path "
+                "while it chooses its rootdir (before trainguard is loaded), which can change every node id and so "
+                f"the golden folder of every test. Run:\n  {shlex.join(['pytest', *fixed])}")
+
+
 def check_workflow_options(config: pytest.Config) -> None:
     """Usage errors found before any test runs: a bad --trainguard-repeat, a bless in CI without a reason."""
+    check_path_options([str(a) for a in config.invocation_params.args])
     repeat = config.getoption("--trainguard-repeat", 1)
     if repeat is not None and repeat < 1:
         raise pytest.UsageError(f"--trainguard-repeat {repeat}: N must be at least 1 "

@@ -103,7 +103,7 @@ class GuardPlugin:
 
     def _finish(self, item: pytest.Item, pending: Pending) -> None:
         __tracebackhide__ = True
-        from ...core.errors import UsageError
+        from ...core.errors import TrainguardError
         from ...core.guard import GuardRequest, settle
 
         nodeid = guard_nodeid(item)
@@ -123,8 +123,8 @@ class GuardPlugin:
         )
         try:
             result, row = settle(request)
-        except UsageError as exc:
-            self.fail(str(exc))
+        except TrainguardError as exc:  # a refused link, a full disk, a marker mistake: the message, no traceback
+            self.fail(f"trainguard: {nodeid}: {exc}" if not str(exc).startswith(nodeid) else str(exc))
         item.user_properties.append(("trainguard", row))
         if result.failed:
             self.fail(result.message)
@@ -141,7 +141,9 @@ class GuardPlugin:
         from ...core.summary import summary_lines
 
         terminalreporter.write_sep("=", "trainguard")
+        from ...core.text import safe_output
+
         for line in summary_lines(self.rows):
-            terminalreporter.write_line(line)
+            terminalreporter.write_line(safe_output(line))
         if self.report_path is not None:
             terminalreporter.write_line(f"report: {self.report_path}")

@@ -53,4 +53,6 @@ def remember_nodeid(item: pytest.Item) -> None:
 def fail(message: str) -> NoReturn:
     """Fail the running test with `message` and no traceback (trainguard explains itself)."""
     __tracebackhide__ = True
-    pytest.fail(message, pytrace=False)
+    from ...core.text import safe_output
+
+    pytest.fail(safe_output(message), pytrace=False)
