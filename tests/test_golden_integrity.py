@@ -293,7 +293,7 @@ def _interrupted_after_commit(folder: Path, run, drop_trace: bool = False) -> No
     temps = {k: atomic.write_temp(folder, k, golden_format.parquet_writer(k, golden_format.seal(k, t, meta, run_id)))
              for k, t in tables.items()}
     os.replace(temps.pop("metrics.parquet"), folder / "metrics.parquet")  # killed after the first rename
-    record = {"run_id": run_id, "replace": {k: p.name for k, p in temps.items()} | {"metrics.parquet": ".tmp-metrics.parquet.1.gone"},
+    record = {"run_id": run_id, "replace": {k: p.name for k, p in temps.items()} | {"metrics.parquet": ".tmp-metrics.parquet.1.0123456789ab"},
               "remove": ["trace.parquet"] if drop_trace else []}
     (folder / atomic.COMMIT_FILE).write_text(json.dumps(record))
 

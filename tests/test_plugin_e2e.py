@@ -283,7 +283,7 @@ def test_bless_check_rebless_and_changes(bakery: pytest.Pytester) -> None:
             in sgd_report)
 
     exact = report["test_noise_exact"]
-    assert "tolerance: exact (bitwise)" in exact
+    assert "tolerance: exact (bitwise; from marker)" in exact
     assert re.search(r"^\s+loss\s+changed\s+0 \(first step off\)", exact, re.M), exact
     assert re.search(r"^\s+loss\s+changed\s.*\b6/6 steps off", report["test_no_override"], re.M)
     assert "diverged to NaN at step 3" in report["test_nan_divergence"]

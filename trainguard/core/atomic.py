@@ -302,7 +302,7 @@ class FileSet:
 def check_root(root: Path, what: str) -> None:
     """Refuse to write into a root folder that is a symbolic link (writes would land wherever it points)."""
     if root.is_symlink():
-        raise GoldenError(root, f"is a symbolic link; trainguard does not write {what} through links",
+        raise GoldenCorruptError(root, f"is a symbolic link; trainguard does not write {what} through links",
                           f"give the real folder instead: {os.path.realpath(root)}")
 
 
@@ -316,7 +316,8 @@ def write_confined(root: Path, relpath: str, data: bytes | str | Callable[[Path]
     target.parent.mkdir(parents=True, exist_ok=True)
     check_confined(target.parent, root)
     if target.is_symlink():
-        raise GoldenError(target, "is a symbolic link; trainguard does not write through links", "remove the link")
+        raise GoldenCorruptError(target, "is a symbolic link; trainguard does not write through links",
+                                 "remove the link")
     try:
         write_atomic(target, data, fsync=fsync)
     except OSError as exc:
