@@ -1,10 +1,13 @@
 """Fuzzing the golden reader: only trainguard's own errors may come out of `read_run`.
 
-Golden files arrive through pull requests, so the reader gets hostile bytes. Four
+Golden files arrive through pull requests, so the reader gets hostile bytes. Five
 Hypothesis-driven tests (500 examples each, derandomized so CI sees the same cases every
 run) mutate valid goldens: raw byte flips, truncations and insertions; metadata rewritten
-with random and deeply nested JSON; tables of random column types; and valid tables with
-random cell values (resealed with a correct digest so the checks behind it are reached).
+with random and deeply nested JSON; tables of random column types; valid tables with
+random cell values (resealed with a correct digest so the checks behind it are reached);
+and, structure-aware, valid tables re-encoded (codecs, dictionary pages on or off, page
+versions, row groups and pages of a few rows), with list cells of hostile lengths and
+metadata fields given values of every type and range, all behind a valid digest.
 Each prints how many cases it tried, how many were refused with a trainguard error, and how
 many other exceptions escaped (must be 0).
 """
@@ -287,6 +290,89 @@ def test_fuzz_cell_values_behind_a_valid_digest(pristine, tmp_path):
         md[golden_format.KEY_DIGEST] = golden_format.content_digest(name, table, md).encode()
         pq.write_table(table.replace_schema_metadata(md), folder / name)
         tally.read(folder)
+
+    case()
+    tally.report()
+
+
+# -- 5. structure-aware: encodings, dictionary pages, list lengths, metadata fields ------------------
+
+_tolerance_value = st.one_of(st.floats(), st.sampled_from([1e300, -0.0, 0.5, 0.51, 1e-2, 1.01e-2, 1e-4]),
+                             st.integers(-3, 10**9), st.text(max_size=4), st.none(), st.booleans())
+_field_values = {
+    "seed": st.one_of(st.integers(-2, 2**33), st.booleans(), st.floats(), st.text(max_size=3)),
+    "deterministic": st.one_of(st.sampled_from([True, False, "warn", "Warn", 0, 1, None]), st.text(max_size=3)),
+    "tolerances": st.fixed_dictionaries({"rtol": _tolerance_value, "atol": _tolerance_value},
+                                        optional={"exact": st.one_of(st.booleans(), st.integers(0, 1)),
+                                                  "metrics": st.one_of(st.lists(st.integers(), max_size=2),
+                                                                       st.dictionaries(st.text(max_size=3),
+                                                                                       st.dictionaries(st.sampled_from(["rtol", "atol", "x"]), _tolerance_value, max_size=2), max_size=2)),
+                                                  "source": st.text(max_size=3)}),
+    "calibrated": st.fixed_dictionaries({"rtol": _tolerance_value, "atol": _tolerance_value},
+                                        optional={"metrics": st.one_of(st.lists(st.integers(), max_size=2),
+                                                                       st.dictionaries(st.text(max_size=3),
+                                                                                       st.dictionaries(st.sampled_from(["rtol", "atol"]), _tolerance_value, max_size=2), max_size=2)),
+                                                  "safety": st.floats(), "switch": st.text(max_size=3)}),
+    "blessed_at": st.one_of(st.just("2026-12-01T21:57:42Z"), st.text(max_size=24)),
+    "reason": st.one_of(st.text(max_size=30), st.text(alphabet="\r\n\x1b:|`<>", max_size=30), st.integers()),
+    "max_values": st.one_of(st.integers(-5, 2**45), st.floats()),
+    "fingerprint": st.one_of(st.dictionaries(st.text(max_size=4), _json, max_size=4), st.text(max_size=4)),
+}
+
+
+@st.composite
+def _structure(draw, table):
+    """A valid table re-encoded and re-shaped the ways Parquet allows, with metadata fields fuzzed."""
+    columns = {name: table.column(name) for name in table.column_names}
+    rows = table.num_rows
+    # list lengths: the shape and sketch (or values) cells of one row given another length
+    for name in ("shape", "sketch", "values"):
+        if name in columns and rows and draw(st.booleans()):
+            cells = columns[name].to_pylist()
+            length = draw(st.sampled_from([0, 1, 65, 4097, 5000, 20_000]))
+            fill = 1 if name == "shape" else 0.5
+            cells[draw(st.integers(0, rows - 1))] = [fill] * length
+            columns[name] = pa.array(cells, table.schema.field(name).type)
+    new = pa.table(columns, schema=table.schema)
+    meta = dict(A.meta.to_json())
+    for key in draw(st.lists(st.sampled_from(sorted(_field_values)), max_size=3, unique=True)):
+        meta[key] = draw(_field_values[key])
+    options = dict(
+        compression=draw(st.sampled_from(["zstd", "snappy", "gzip", "none", "brotli", "lz4"])),
+        use_dictionary=draw(st.booleans()),
+        row_group_size=draw(st.sampled_from([None, 1, 2, 5])),
+        data_page_size=draw(st.sampled_from([None, 64, 1024])),
+        data_page_version=draw(st.sampled_from(["1.0", "2.0"])),
+        write_statistics=draw(st.booleans()),
+    )
+    return new, json.dumps(meta, allow_nan=True).encode(), options
+
+
+def test_fuzz_structure_encodings_list_lengths_and_metadata_fields(pristine, tmp_path):
+    tally = Tally("structure")
+    folder = _fresh(pristine, tmp_path)
+    _, original = pristine
+    tables = {n: pq.read_table(folder / n) for n in FILES}
+
+    @FUZZ
+    @given(name=st.sampled_from(FILES), data=st.data())
+    def case(name, data):
+        for n in FILES:
+            (folder / n).write_bytes(original[n])
+        table, meta, options = data.draw(_structure(tables[name]))
+        run_id = tables[name].schema.metadata[golden_format.KEY_RUN_ID].decode()
+        targets = FILES if data.draw(st.booleans()) else (name,)  # metadata of the whole set, or one file
+        for n in targets:
+            t = table if n == name else tables[n]
+            sealed = golden_format.seal(n, t, meta, run_id)
+            pq.write_table(sealed, folder / n, **options)
+        run = tally.read(folder)
+        if run is not None:
+            # accepted: then every tolerance it carries is finite and within the caps
+            for key in ("tolerances", "calibrated"):
+                for part in ("rtol", "atol"):
+                    value = (run.meta.get(key) or {}).get(part, 0.0)
+                    assert 0 <= value <= 1.0
 
     case()
     tally.report()

@@ -425,9 +425,10 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
     if kind != METRICS_FILE and bounds.num_rows > limits["records"]:
         raise GoldenCorruptError(path, f"declares {bounds.num_rows} rows, more than the {limits['records']} allowed "
                                  "(file size limit / 256)", raise_limit)
+    strings = [f.name for f in expected if f.type == pa.string()]
     try:
-        source = pa.BufferReader(data)
-        schema = pq.read_schema(source)
+        pf = pq.ParquetFile(pa.BufferReader(data), read_dictionary=strings)
+        schema = pf.schema_arrow
     except (pa.ArrowException, OSError, ValueError, MemoryError, OverflowError, TypeError, KeyError, IndexError) as exc:
         raise GoldenCorruptError(path, f"is not a readable Parquet file ({short_error(exc)})") from None
     raw = dict(schema.metadata or {})
@@ -447,14 +448,14 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
             raise GoldenCorruptError(path, f"has column {field.name!r} more than once")
         present.append(field.name)
         actual = schema.field(field.name).type
+        if field.name in strings and pa.types.is_dictionary(actual):  # read_dictionary keeps strings encoded
+            actual = actual.value_type
         if not actual.equals(field.type):
             raise GoldenCorruptError(path, f"column {field.name!r} has type {actual}, expected {field.type}")
     extra = [n for n in schema.names if n not in present]
     if extra:
         raise GoldenCorruptError(path, f"has columns trainguard does not write: {', '.join(map(repr, extra[:5]))}")
-    strings = [f.name for f in expected if f.type == pa.string()]
     try:
-        pf = pq.ParquetFile(pa.BufferReader(data), read_dictionary=strings)
         if pf.metadata.num_row_groups != len(bounds.row_groups):
             raise GoldenCorruptError(path, "has a footer pyarrow reads differently from the Parquet spec")
         groups = [pf.read_row_group(i, columns=present) for i in range(len(bounds.row_groups))]

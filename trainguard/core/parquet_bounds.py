@@ -46,6 +46,15 @@ class OverLimitError(BoundsError):
     """The file is well formed but would decode to more than the limits allow."""
 
 
+#: Which fields of a struct to build: {field id: spec of the nested struct, or None for the whole value}.
+Spec = "dict[int, Spec] | None"
+
+#: parquet.thrift fields measure() reads; everything else (schema, statistics, indexes) is skipped.
+_COLUMN_META: dict[int, Spec] = {1: None, 3: None, 4: None, 5: None, 7: None, 9: None, 11: None}
+_FOOTER: dict[int, Spec] = {2: {}, 3: None, 4: {1: {1: None, 3: _COLUMN_META}, 3: None}}
+_PAGE_HEADER: dict[int, Spec] = {1: None, 2: None, 3: None, 5: {1: None}, 7: {1: None}, 8: {1: None}}
+
+
 class _Reader:
     """A Thrift compact-protocol reader over a bytes object; every read checks the end."""
 
@@ -62,11 +71,16 @@ class _Reader:
         return b
 
     def varint(self) -> int:
+        buf, pos, end = self.buf, self.pos, self.end
         shift = result = 0
         while True:
-            b = self.byte()
+            if pos >= end:
+                raise BoundsError("Thrift data ends early")
+            b = buf[pos]
+            pos += 1
             result |= (b & 0x7F) << shift
-            if not b & 0x80:
+            if b < 0x80:
+                self.pos = pos
                 return result
             shift += 7
             if shift > 63:
@@ -123,8 +137,9 @@ class _Reader:
     def _key(k: object) -> object:
         return k if isinstance(k, (int, bytes, bool, float)) else repr(k)
 
-    def struct(self, depth: int = 0) -> dict[int, object]:
-        """One struct as {field id: value}; unknown fields are read and kept (their ids say nothing to us)."""
+    def struct(self, depth: int = 0, keep: Spec = None) -> dict[int, object]:
+        """One struct as {field id: value}. With `keep` ({field id: nested keep, or None for all}),
+        other fields are skipped without building objects (footers carry statistics we never need)."""
         if depth > _MAX_DEPTH:
             raise BoundsError("Thrift structs nested too deeply")
         out: dict[int, object] = {}
@@ -137,7 +152,82 @@ class _Reader:
             delta = head >> 4
             fid = last + delta if delta else self.zigzag()
             last = fid
-            out[fid] = self.value(t, depth)
+            if keep is None:
+                out[fid] = self.value(t, depth)
+            elif fid in keep:
+                sub = keep[fid]
+                if sub is not None and t == _T_STRUCT:
+                    out[fid] = self.struct(depth + 1, sub)
+                elif sub is not None and t in (_T_LIST, _T_SET):
+                    out[fid] = self._struct_list(depth, sub)
+                else:
+                    out[fid] = self.value(t, depth)
+            else:
+                self.skip(t, depth)
+
+    def _struct_list(self, depth: int, keep: Spec) -> list[object]:
+        head = self.byte()
+        size, et = head >> 4, head & 0x0F
+        if size == 15:
+            size = self.varint()
+        if size > self.end - self.pos:
+            raise BoundsError("Thrift list longer than its data")
+        if et != _T_STRUCT:
+            raise BoundsError("Thrift list of the wrong element type")
+        return [self.struct(depth + 2, keep) for _ in range(size)]
+
+    def skip(self, t: int, depth: int) -> None:
+        """Step over one value of type `t` without building it."""
+        if depth > _MAX_DEPTH:
+            raise BoundsError("Thrift structs nested too deeply")
+        if t in (_T_I16, _T_I32, _T_I64):
+            self.varint()
+        elif t in (_T_TRUE, _T_FALSE):
+            return
+        elif t == _T_BYTE:
+            self.byte()
+        elif t == _T_DOUBLE:
+            self.take(8)
+        elif t == _T_BINARY:
+            n = self.varint()
+            if n < 0 or self.pos + n > self.end:
+                raise BoundsError("Thrift field runs past its data")
+            self.pos += n
+        elif t == _T_UUID:
+            self.take(16)
+        elif t in (_T_LIST, _T_SET):
+            head = self.byte()
+            size, et = head >> 4, head & 0x0F
+            if size == 15:
+                size = self.varint()
+            if size > self.end - self.pos:
+                raise BoundsError("Thrift list longer than its data")
+            if et in (_T_TRUE, _T_FALSE):
+                self.take(size)
+            else:
+                for _ in range(size):
+                    self.skip(et, depth + 1)
+        elif t == _T_MAP:
+            size = self.varint()
+            if size:
+                types = self.byte()
+                if 2 * size > self.end - self.pos:
+                    raise BoundsError("Thrift map longer than its data")
+                for _ in range(size):
+                    self.skip(types >> 4, depth + 1)
+                    self.skip(types & 0x0F, depth + 1)
+        elif t == _T_STRUCT:
+            last_depth = depth + 1
+            while True:
+                head = self.byte()
+                ft = head & 0x0F
+                if ft == _T_STOP:
+                    return
+                if not head >> 4:
+                    self.zigzag()
+                self.skip(ft, last_depth)
+        else:
+            raise BoundsError(f"unknown Thrift type {t}")
 
 
 def _int(d: dict[int, object], fid: int, what: str, required: bool = True) -> int:
@@ -207,7 +297,7 @@ def measure(data: bytes, max_page_bytes: int) -> FileBounds:
     """
     n = footer_length(data)
     start = len(data) - 8 - n
-    meta = _Reader(data, start, len(data) - 8).struct()
+    meta = _Reader(data, start, len(data) - 8).struct(keep=_FOOTER)
     num_rows = _int(meta, 3, "num_rows")
     schema = meta.get(2)
     groups = meta.get(4)
@@ -255,7 +345,7 @@ def _chunk(data: bytes, md: dict[int, object], footer_start: int, max_page_bytes
     pos = first
     while pos < end:
         r = _Reader(data, pos, end)
-        header = r.struct()
+        header = r.struct(keep=_PAGE_HEADER)
         kind = _int(header, 1, "page type")
         raw = _int(header, 2, "uncompressed_page_size")
         size = _int(header, 3, "compressed_page_size")
@@ -292,7 +382,7 @@ def _chunk(data: bytes, md: dict[int, object], footer_start: int, max_page_bytes
 def key_values(data: bytes) -> dict[bytes, bytes]:
     """The file's key-value metadata, read from the footer alone (no pyarrow, nothing decoded)."""
     n = footer_length(data)
-    meta = _Reader(data, len(data) - 8 - n, len(data) - 8).struct()
+    meta = _Reader(data, len(data) - 8 - n, len(data) - 8).struct(keep={5: {1: None, 2: None}})
     out: dict[bytes, bytes] = {}
     for kv in meta.get(5) or []:
         if isinstance(kv, dict) and isinstance(kv.get(1), bytes):
