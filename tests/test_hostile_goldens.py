@@ -499,3 +499,18 @@ def test_errors_from_store_reach_pytest_as_messages(pytester):
     text = result.stdout.str()
     assert "symbolic link" in text and "give the real folder instead" in text
     assert "Traceback" not in text and not any(real.iterdir())
+
+
+@pytest.mark.slow
+def test_results_are_never_written_through_a_link(pytester):
+    pytester.makepyfile(test_tram=GUARDED.replace("MOMENTUM", "0.9"))
+    assert pytester.runpytest_subprocess("-p", "no:xdist", "--trainguard-bless").ret == 0
+    outside = pytester.path / "outside"
+    outside.mkdir()
+    (pytester.path / "res").symlink_to(outside, target_is_directory=True)
+    pytester.makepyfile(test_tram=GUARDED.replace("MOMENTUM", "0.8"))
+    result = pytester.runpytest_subprocess("-p", "no:xdist", "--trainguard-results=res")
+    result.assert_outcomes(failed=1)
+    text = result.stdout.str()
+    assert "symbolic link" in text and "Traceback" not in text
+    assert not any(outside.iterdir())

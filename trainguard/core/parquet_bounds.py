@@ -111,12 +111,7 @@ class _Reader:
         if t == _T_UUID:
             return self.take(16)
         if t in (_T_LIST, _T_SET):
-            head = self.byte()
-            size, et = head >> 4, head & 0x0F
-            if size == 15:
-                size = self.varint()
-            if size > self.end - self.pos:  # every element takes at least one byte
-                raise BoundsError("Thrift list longer than its data")
+            size, et = self.list_header()
             if et in (_T_TRUE, _T_FALSE):  # booleans in lists are one byte each
                 return [self.byte() == 1 for _ in range(size)]
             return [self.value(et, depth + 1) for _ in range(size)]
@@ -165,13 +160,18 @@ class _Reader:
             else:
                 self.skip(t, depth)
 
-    def _struct_list(self, depth: int, keep: Spec) -> list[object]:
+    def list_header(self) -> tuple[int, int]:
+        """(size, element type) of a list or set; every element takes at least one byte."""
         head = self.byte()
         size, et = head >> 4, head & 0x0F
         if size == 15:
             size = self.varint()
         if size > self.end - self.pos:
             raise BoundsError("Thrift list longer than its data")
+        return size, et
+
+    def _struct_list(self, depth: int, keep: Spec) -> list[object]:
+        size, et = self.list_header()
         if et != _T_STRUCT:
             raise BoundsError("Thrift list of the wrong element type")
         return [self.struct(depth + 2, keep) for _ in range(size)]
@@ -196,12 +196,7 @@ class _Reader:
         elif t == _T_UUID:
             self.take(16)
         elif t in (_T_LIST, _T_SET):
-            head = self.byte()
-            size, et = head >> 4, head & 0x0F
-            if size == 15:
-                size = self.varint()
-            if size > self.end - self.pos:
-                raise BoundsError("Thrift list longer than its data")
+            size, et = self.list_header()
             if et in (_T_TRUE, _T_FALSE):
                 self.take(size)
             else:
@@ -248,6 +243,7 @@ class ChunkBounds:
     slots: int = 0  # values incl. nulls and empty lists: the level count (leaf slots of a list column)
     data_pages: int = 0
     plain_bytes: int = 0  # uncompressed bytes of data pages (bounds plain-encoded strings)
+    has_dictionary: bool = False
     dict_values: int = 0
     dict_bytes: int = 0
     largest_page: int = 0
@@ -358,9 +354,9 @@ def _chunk(data: bytes, md: dict[int, object], footer_start: int, max_page_bytes
         if kind == _PAGE_DICT:
             sub = header.get(7)
             count = _int(sub, 1, "dictionary num_values") if isinstance(sub, dict) else -1
-            if count < 0 or out.dict_values:
-                raise BoundsError(f"column {name!r} has a malformed or second dictionary page")
-            out.dict_values, out.dict_bytes = count, raw
+            if count < 0 or out.has_dictionary or out.data_pages:
+                raise BoundsError(f"column {name!r} has a malformed, second or misplaced dictionary page")
+            out.has_dictionary, out.dict_values, out.dict_bytes = True, count, raw
         elif kind in (_PAGE_DATA, _PAGE_DATA_V2):
             sub = header.get(5 if kind == _PAGE_DATA else 8)
             count = _int(sub, 1, "page num_values") if isinstance(sub, dict) else -1
