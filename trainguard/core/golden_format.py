@@ -695,23 +695,23 @@ def metrics_from_table(path: Path, table: Any, max_names: int | None = None) -> 
     out: dict[str, MetricSeries] = {}
     if not len(codes):
         return out
+    # One stable sort by name code, then every series is a slice: linear apart from the sort.
     order = np.argsort(codes, kind="stable")
     sorted_codes = codes[order]
-    bounds = np.flatnonzero(np.diff(sorted_codes)) + 1
-    starts = np.concatenate(([0], bounds))
-    ends = np.concatenate((bounds, [len(order)]))
-    steps = np.asarray(steps, dtype=np.int64)
-    values = np.asarray(values, dtype=np.float64)
-    groups = {}
-    for lo, hi in zip(starts.tolist(), ends.tolist()):
-        idx = order[lo:hi]
-        groups[names[int(sorted_codes[lo])]] = idx
+    steps = np.asarray(steps, dtype=np.int64)[order]
+    values = np.asarray(values, dtype=np.float64)[order]
+    same = sorted_codes[1:] == sorted_codes[:-1]
+    bad = np.flatnonzero(same & (np.diff(steps) <= 0))
+    if bad.size:
+        name = names[int(sorted_codes[bad[0]])]
+        raise GoldenCorruptError(path, f"metric {name!r} has steps that do not strictly increase")
+    bounds = np.flatnonzero(~same) + 1
+    starts = np.concatenate(([0], bounds)).tolist()
+    ends = np.concatenate((bounds, [len(order)])).tolist()
+    groups = {names[c]: (lo, hi) for c, lo, hi in zip(sorted_codes[starts].tolist(), starts, ends)}
     for name in sorted(groups):  # by name, as before
-        idx = groups[name]
-        s = steps[idx]
-        if s.size > 1 and not np.all(np.diff(s) > 0):
-            raise GoldenCorruptError(path, f"metric {name!r} has steps that do not strictly increase")
-        out[str(name)] = MetricSeries(s, values[idx])
+        lo, hi = groups[name]
+        out[str(name)] = MetricSeries(steps[lo:hi], values[lo:hi])
     return out
 
 
