@@ -479,8 +479,9 @@ def _read_bytes(path: Path, max_bytes: int) -> bytes:
             raise GoldenCorruptError(path, "is not a regular file (a folder?) where a golden file belongs",
                                      "remove it, then re-bless")
         raise GoldenCorruptError(path, "is missing while its sibling golden file exists")
-    try:
-        with open(path, "rb") as fh:
+    try:  # O_NOFOLLOW: a file swapped for a link after the check above is not followed either
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0))
+        with os.fdopen(fd, "rb") as fh:
             size = os.fstat(fh.fileno()).st_size
             if size > max_bytes:
                 raise GoldenCorruptError(
