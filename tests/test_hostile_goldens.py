@@ -514,3 +514,19 @@ def test_results_are_never_written_through_a_link(pytester):
     text = result.stdout.str()
     assert "symbolic link" in text and "Traceback" not in text
     assert not any(outside.iterdir())
+
+
+def test_a_rebless_does_not_keep_a_crafted_calibrated_entry(tmp_path):
+    from trainguard.core.guard import bless
+    from trainguard.core.tolerance import Policy
+    from trainguard.core.verdicts import BLESSED_CHANGED
+
+    folder = tmp_path / "golden" / "g"
+    golden.write_run(folder, make_run("A", with_trace=False))
+    for name in ("metrics.parquet", "state.parquet"):
+        rewrite(folder / name, metadata={b"trainguard.meta": b'{"calibrated": {"rtol": 1e300, "atol": 1e300}}'},
+                reseal=True)
+    result = bless("t.py::g", make_run("B", with_trace=False), folder, Policy(),
+                   store=golden.GoldenStore(tmp_path / "golden"))
+    assert result.outcome == BLESSED_CHANGED  # the unreadable golden was replaced
+    assert "calibrated" not in golden.read_run(folder).meta

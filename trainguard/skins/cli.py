@@ -262,7 +262,7 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
 
     return calibrate(args.nodeid, runs=args.runs, safety=args.safety, write=args.write,
                      golden_dir=args.golden_dir, jobs=args.jobs, keep_runs=args.keep_runs,
-                     golden_dir_option=args.golden_dir)
+                     golden_dir_option=args.golden_dir, out=say)
 
 
 def cmd_merge_reports(args: argparse.Namespace) -> int:

@@ -39,7 +39,7 @@ from typing import Any, Callable, Sequence
 from ..core.errors import TrainguardError
 from ..core.project import default_golden_dir
 from ..core.store import GoldenStore
-from ..core.text import table
+from ..core.text import safe_output, table
 from ..core.verdicts import CHANGED, PASSING
 from . import pytest_runs
 
@@ -301,12 +301,13 @@ def step_main(argv: Sequence[str] | None = None) -> int:
     try:
         repo = Path(args.repo)
         result = run_step(repo, Path(args.cwd), Path(args.frozen), Path(args.work), args.nodeids, args.setup)
-        print(step_line(result, _subject(repo, result.sha)), flush=True)
+        print(safe_output(step_line(result, _subject(repo, result.sha))), flush=True)
         return result.status
     except KeyboardInterrupt:
         return 130
     except Exception as exc:  # noqa: BLE001 - any failure here must abort the bisect, not mark a commit bad
-        print(f"trainguard bisect: step failed, aborting the bisect: {type(exc).__name__}: {exc}", flush=True)
+        print(safe_output(f"trainguard bisect: step failed, aborting the bisect: {type(exc).__name__}: {exc}"),
+              flush=True)
         return STEP_ABORT
 
 

@@ -36,6 +36,7 @@ from ..core.errors import GoldenMissingError, TrainguardError
 from ..core.project import default_golden_dir
 from ..core.records import Run
 from ..core.store import GoldenStore
+from ..core.text import safe_output
 from . import pytest_runs
 from .calibration import (
     DEFAULT_RUNS,
@@ -217,7 +218,7 @@ def calibrate(nodeid: str, runs: int = DEFAULT_RUNS, safety: float = DEFAULT_SAF
                               f"folder or remove it (rm -r {shlex.quote(str(keep))})")
 
     def progress(line: str) -> None:
-        print(line, file=sys.stderr, flush=True)
+        print(safe_output(line), file=sys.stderr, flush=True)
 
     def golden_of(first: RecordedRun) -> tuple[str, Path, str]:
         real = str(first.run.meta.get("nodeid") or nodeid)  # pytest's id, relative to rootdir
