@@ -14,6 +14,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, Sequence
 
+from . import dispatch
 from .comparison import Comparison, compare
 from .errors import GoldenMissingError, TrainguardError, UsageError
 from .fixes import FixCommands
@@ -77,10 +78,14 @@ def check(nodeid: str, run: Run, folder: Path, policy: Policy, bless_command: st
     except TrainguardError as exc:
         result = GuardResult(nodeid, shown, UNREADABLE, run=run, error=str(exc))
     else:
-        if use_calibrated:
-            policy = calibrated_policy(policy, reference.meta)
-        cmp = compare(reference, run, policy)
-        result = GuardResult(nodeid, shown, cmp.outcome, comparison=cmp, run=run, reference=reference)
+        why = dispatch.mismatch(reference.meta.get("fingerprint"), run.meta.get("fingerprint"))
+        if why:
+            result = GuardResult(nodeid, shown, UNREADABLE, run=run, error=f"{shown}: {why}")
+        else:
+            if use_calibrated:
+                policy = calibrated_policy(policy, reference.meta)
+            cmp = compare(reference, run, policy)
+            result = GuardResult(nodeid, shown, cmp.outcome, comparison=cmp, run=run, reference=reference)
     if bless_command is not None:
         result.message = render_result(result, bless_command)
     return result
@@ -120,6 +125,8 @@ def _same_golden(previous: Run, run: Run, policy: Policy) -> bool:
     if cmp.trace is not None and cmp.trace.first_bitwise is not None:
         return False
     keys = ("seed", "tolerances", "deterministic")
+    if dispatch.mismatch(previous.meta.get("fingerprint"), run.meta.get("fingerprint")):
+        return False  # same bits, but blessed in the other mode: rewrite it so the mode is recorded
     return all(previous.meta.get(k) == run.meta.get(k) for k in keys)
 
 

@@ -34,15 +34,18 @@ class PytestCommands:
     """The fix commands messages quote (`core.fixes.FixCommands`), for the user's pytest invocation.
 
     `golden_dir_option` is the `--trainguard-golden-dir` value the user gave, repeated in
-    every suggested command so that it acts on the same goldens.
+    every suggested command so that it acts on the same goldens; so is `--trainguard-portable`.
     """
 
     golden_dir_option: str | None = None
+    portable_option: bool = False  # --trainguard-portable was given: every suggested run repeats it
 
     def bless(self, nodeid: str) -> str:
         parts = ["pytest", "--trainguard-bless", "--trainguard-reason", REASON_PLACEHOLDER]
         if self.golden_dir_option:
             parts += [shlex.quote(f"--trainguard-golden-dir={self.golden_dir_option}")]
+        if self.portable_option:
+            parts.append("--trainguard-portable")
         parts.append(shlex.quote(nodeid))
         return " ".join(parts)
 

@@ -43,6 +43,9 @@ def pytest_addoption(parser: pytest.Parser) -> None:
                          "for 'trainguard bless --from DIR'")
     group.addoption("--trainguard-report", metavar="DIR", default=None,
                     help="write summary.md, summary.json and plots of changed trajectories to DIR")
+    group.addoption("--trainguard-portable", action="store_true", default=False,
+                    help="pin CPU kernel dispatch to a baseline every x86-64 machine shares (ATen, oneDNN, oneMKL "
+                         "CNR, one thread), so goldens match across CPUs; also ini trainguard_portable = true")
     group.addoption("--trainguard-threads", metavar="N", type=int, default=None,
                     help="set torch's intra-op thread count inside guarded tests")
     group.addoption("--trainguard-nondeterministic", action="store_true", default=False,
@@ -55,8 +58,10 @@ def pytest_addoption(parser: pytest.Parser) -> None:
     parser.addini("trainguard_golden_dir", "folder of golden files, relative to rootdir", default="golden")
     parser.addini("trainguard_rtol", "default relative tolerance of guarded tests", default="")
     parser.addini("trainguard_atol", "default absolute tolerance of guarded tests", default="")
-    parser.addini("trainguard_max_file_mib", "golden files larger than this many MiB are refused before loading",
-                  default="512")
+    parser.addini("trainguard_max_file_mib", "golden files larger than this many MiB are refused before loading; "
+                  "every decoding limit derives from it (default 32)", default="")
+    parser.addini("trainguard_portable", "pin CPU kernel dispatch in guarded tests (see --trainguard-portable)",
+                  type="bool", default=False)
     parser.addini("trainguard_max_values", "tensors up to this many elements keep their values in the golden",
                   default="")
 
@@ -71,7 +76,18 @@ def pytest_configure(config: pytest.Config) -> None:
     shard = parse_shard(raw_shard) if raw_shard else None  # here, not at collection: under xdist only workers collect
     check_workflow_options(config)
     manager = config.pluginmanager
-    manager.register(GuardPlugin(config), GuardPlugin.NAME)
+    guard = GuardPlugin(config)
+    if config.getoption("--trainguard-portable", False) or config.getini("trainguard_portable"):
+        from ...core import dispatch
+
+        threads = config.getoption("--trainguard-threads", None)
+        if threads not in (None, dispatch.PORTABLE_THREADS):
+            raise pytest.UsageError(f"--trainguard-threads {threads} contradicts portable mode, which runs guarded "
+                                    f"tests on {dispatch.PORTABLE_THREADS} thread (oneMKL's reproducible branch "
+                                    "needs a fixed count); drop one of the two")
+        guard.portable = True
+        guard.portable_replaced = dispatch.pin()  # before test modules import torch and run kernels
+    manager.register(guard, GuardPlugin.NAME)
     if shard is not None:
         manager.register(ShardPlugin(*shard), ShardPlugin.NAME)
     if (config.getoption("--trainguard-repeat", 1) or 1) > 1:
@@ -140,11 +156,27 @@ def trajectory(request: pytest.FixtureRequest) -> Iterator[Any]:
     except UsageError as exc:
         GuardPlugin.fail(f"{request.node.nodeid}: {exc}")
     traj = Trajectory(max_values=max_values)
+    guard = GuardPlugin.of(config)
+    portable = guard is not None and guard.portable
     saved = GlobalState.capture()
     try:
         deterministic = False if config.getoption("--trainguard-nondeterministic") else settings.deterministic
-        guarded_setup(settings.seed, deterministic, threads=config.getoption("--trainguard-threads"))
-        Pending.attach(request.node, Pending(traj, settings, fingerprint()))
+        threads = config.getoption("--trainguard-threads")
+        if portable:
+            from ...core import dispatch
+
+            threads = dispatch.PORTABLE_THREADS
+        guarded_setup(settings.seed, deterministic, threads=threads)
+        fp = fingerprint()
+        if portable:
+            assert guard is not None
+            if guard.portable_capability is None:
+                try:
+                    guard.portable_capability = dispatch.verify()
+                except UsageError as exc:
+                    GuardPlugin.fail(f"{request.node.nodeid}: {exc}")
+            fp[dispatch.FINGERPRINT_KEY] = dispatch.record(guard.portable_replaced, guard.portable_capability)
+        Pending.attach(request.node, Pending(traj, settings, fp))
         yield traj
     finally:
         traj.close()

@@ -32,6 +32,9 @@ class GuardPlugin:
         self.config = config
         self.rows: list[dict[str, Any]] = []  # one per guarded test, gathered from reports (xdist-safe)
         self.report_path: Path | None = None
+        self.portable = False  # portable mode: kernel dispatch pinned at configure (core.dispatch)
+        self.portable_replaced: dict[str, str] = {}  # the user's own dispatch settings the pins replaced
+        self.portable_capability: str | None = None  # verified once, at the first guarded test
 
     @classmethod
     def of(cls, config: pytest.Config) -> GuardPlugin | None:
@@ -60,7 +63,8 @@ class GuardPlugin:
 
     @property
     def commands(self) -> PytestCommands:
-        return PytestCommands(self.config.getoption("--trainguard-golden-dir"))
+        return PytestCommands(self.config.getoption("--trainguard-golden-dir"),
+                              bool(self.config.getoption("--trainguard-portable")))
 
     def bless_command(self, nodeid: str) -> str:
         return self.commands.bless(nodeid)
