@@ -3,7 +3,7 @@
 Invented scenario: the (made-up) Lindenhof tram depot wants to predict the energy its
 trams draw on a run from synthetic features (load factor, outside temperature, number of
 stops, gradient of the line, auxiliary heating). All data are generated here from a fixed
-seed; nothing is downloaded. Goldens live in golden/tests/test_guarded_optimizers.py/.
+seed; nothing is downloaded. Goldens live in guarded/golden/, blessed in portable mode (guarded/pytest.ini).
 
 Besides being guarded, each test asserts that training actually improved the loss, so
 a broken optimizer setup cannot be blessed silently.
