@@ -53,6 +53,7 @@ class TensorDiff:
     new_value: float | None = None
     sketch_distance: float | None = None  # estimated L2 distance, when only sketches were stored
     sketch_allowed: float | None = None
+    scale: float = math.nan  # largest finite |golden| among the compared numbers: max_abs / scale is scale-free
 
 
 @dataclass
@@ -159,6 +160,7 @@ def compare_tensor(name: str, golden: TensorRecord | None, new: TensorRecord | N
     if finite.any():
         diff.max_abs = float(absd[finite].max())
         diff.max_rel = float(_rel(absd[finite], g[finite]).max())
+        diff.scale = float(np.abs(g[finite]).max())
     diff.elements_off = j.elements_off
     if diff.basis == "values" and g.size == 1:
         diff.golden_value, diff.new_value = float(g[0]), float(n[0])

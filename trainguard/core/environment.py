@@ -13,7 +13,7 @@ import platform
 import sys
 from typing import Any
 
-#: Environment variables that change kernel selection or threading, recorded when set.
+#: Environment variables recorded when set, besides every one with a dispatch prefix (`machine.DISPATCH_ENV_PREFIXES`).
 RECORDED_ENV = (
     "CUBLAS_WORKSPACE_CONFIG",
     "OMP_NUM_THREADS",
@@ -58,7 +58,11 @@ def _static_part() -> dict[str, Any]:
         capability = torch.backends.cpu.get_cpu_capability()
     except Exception:  # older torch without the query
         capability = "unknown"
+    from .machine import cpu, library_versions
+
     return {
+        "cpu": cpu(),
+        "libraries": library_versions(config),
         "python": platform.python_version(),
         "implementation": platform.python_implementation(),
         "os": platform.system(),
@@ -91,6 +95,8 @@ def fingerprint() -> dict[str, Any]:
     """The current environment as a JSON-ready dict (nested, string keys)."""
     import torch
 
+    from .machine import dispatch_env, imported_distributions
+
     fp = dict(_static_part())
     fp["packages"] = dict(fp["packages"])
     fp["threads"] = {"intra_op": torch.get_num_threads(), "inter_op": torch.get_num_interop_threads()}
@@ -105,5 +111,8 @@ def fingerprint() -> dict[str, Any]:
     }
     fp["default_dtype"] = str(torch.get_default_dtype()).replace("torch.", "")
     fp["device"] = _device_part(torch)
-    fp["env"] = {k: os.environ[k] for k in RECORDED_ENV if k in os.environ}
+    env = {k: os.environ[k] for k in RECORDED_ENV if k in os.environ}
+    env.update(dispatch_env())
+    fp["env"] = dict(sorted(env.items()))
+    fp["packages"].update(imported_distributions())  # optimizer and model libraries too, not only torch
     return fp

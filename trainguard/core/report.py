@@ -7,11 +7,12 @@ and which command re-blesses if the change was intended.
 
 from __future__ import annotations
 
+import math
 import shlex
 from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 from .comparison import Comparison
-from .text import fmt, join_names, short, table
+from .text import fmt, join_names, short, table, untrusted
 from .verdicts import CHANGED, CLOSE, IDENTICAL, NO_GOLDEN, NONDETERMINISTIC, UNREADABLE, rank
 
 if TYPE_CHECKING:
@@ -132,16 +133,72 @@ def describe_comparison(cmp: Comparison) -> str:
     return "\n".join(out)
 
 
+#: Largest scale-free difference (|new - golden| over the entry's own magnitude) still read as the
+#: rounding drift another CPU or library build produces. Common practice, no single source: float32
+#: rounding (IEEE 754 binary32 epsilon 2**-23, about 1.19e-7) grows over tens of optimizer steps to
+#: 1e-6..1e-4 (this project saw at most 3.7e-4 across CPUs), while a 1 % hyperparameter change is 1e-2.
+DRIFT_SIZE = 1e-3
+#: Fingerprint parts whose change can move float bits without any change of the training code.
+_MACHINE_PARTS = ("cpu", "cpu_capability", "libraries", "packages", "torch_build", "threads", "env",
+                  "parallel_backend", "device", "python", "machine", "os")
+
+
+def drift(cmp: Comparison) -> float | None:
+    """The largest scale-free difference when every difference looks like rounding drift, else None.
+
+    None when anything structural changed (a metric, step or entry missing or added, a dtype or shape),
+    a hyperparameter or other one-number entry moved, a value became non-finite, or a difference
+    exceeds `DRIFT_SIZE`.
+    """
+    largest = 0.0
+    for m in cmp.metrics:
+        if m.verdict == IDENTICAL:
+            continue
+        if m.first_step is None or m.missing_steps or m.added_steps or m.note or not math.isfinite(m.rel_diff):
+            return None
+        scale = abs(m.golden) or 1.0
+        largest = max(largest, m.max_abs / scale, m.rel_diff)
+    for t in cmp.tensors:
+        if t.verdict == IDENTICAL:
+            continue
+        if t.kind == "hyperparameter" or t.golden_value is not None or any(r != "checksum" for r in t.reasons):
+            return None
+        if not (math.isfinite(t.max_abs) and math.isfinite(t.scale)) or t.scale == 0:
+            return None
+        largest = max(largest, t.max_abs / t.scale)
+    return largest if largest <= DRIFT_SIZE else None
+
+
+def machine_changes(cmp: Comparison) -> list[str]:
+    """The fingerprint differences that concern the machine or the libraries, not the test's settings."""
+    lines = environment_changes(cmp.golden_meta.get("fingerprint"), cmp.new_meta.get("fingerprint"))
+    return [line for line in lines if line.split(".", 1)[0].split(":", 1)[0] in _MACHINE_PARTS]
+
+
 def failure_report(nodeid: str, folder: str, cmp: Comparison, bless_command: str) -> str:
-    """The report of a changed test: where it changed, by how much, and the command that re-blesses it."""
+    """The report of a changed test: where it changed, by how much, and the command that re-blesses it.
+
+    When only the machine or libraries changed and every difference is of rounding-drift size,
+    the report leads with that and with the remedies, instead of asking for a re-bless.
+    """
     head = [f"trainguard: {nodeid} changed against its golden {folder}"]
     meta = cmp.golden_meta
+    size = drift(cmp)
+    machine = machine_changes(cmp) if size is not None else []
+    if machine:
+        shown = "; ".join(untrusted(line) for line in machine[:4]) + (f"; and {len(machine) - 4} more"
+                                                                       if len(machine) > 4 else "")
+        head.append(f"only the machine or its libraries changed ({shown}), and these differences are of the size "
+                    f"rounding drift produces (max {short(size or 0.0)} of each value's magnitude).")
+        head.append("remedies: bless and check in portable mode (--trainguard-portable, or ini trainguard_portable = "
+                    "true), which pins kernel dispatch so goldens hold across CPUs; or measure the spread with "
+                    f"trainguard calibrate {shlex.quote(nodeid)} --write, which stores a tolerance.")
     if meta.get("blessed_at"):
-        reason = meta.get("reason") or "(no reason given)"
-        head.append(f"golden blessed {meta['blessed_at']}, reason: {reason}")
-    return "\n".join(head) + "\n\n" + describe_comparison(cmp) + (
-        f"\n\nif this change is intended, re-bless it:\n  {bless_command}"
-    )
+        reason = untrusted(meta.get("reason") or "(no reason given)")
+        head.append(f"golden blessed {untrusted(meta['blessed_at'])}, reason: {reason}")
+    fix = ("to accept this machine's numbers instead, re-bless it" if machine
+           else "if this change is intended, re-bless it")
+    return "\n".join(head) + "\n\n" + describe_comparison(cmp) + f"\n\n{fix}:\n  {bless_command}"
 
 
 def render_result(result: GuardResult, bless_command: str, hints: Sequence[str] = (), ci: str | None = None) -> str:
