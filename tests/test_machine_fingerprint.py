@@ -110,3 +110,11 @@ def test_a_real_change_on_another_cpu_is_reported_as_a_change():
     same_cpu = compare(_run(0.0, "AuthenticAMD"), _run(5e-5, "AuthenticAMD"), Policy())
     assert same_cpu.failed
     assert "only the machine" not in failure_report("t.py::t", "g", same_cpu, "pytest")
+
+
+def test_a_library_only_one_run_imported_is_not_reported_as_a_change():
+    golden = {"packages": {"torch": "2.13.0", "depot-optim": "0.1"}}
+    new = {"packages": {"torch": "2.13.0", "depot-optim": "0.1", "matplotlib": "3.11.2"}}
+    assert environment_changes(golden, new) == []
+    assert environment_changes({"packages": {"torch": "2.13.0"}}, {"packages": {}}) == [
+        "packages.torch: 2.13.0 -> (absent)"]  # the always-recorded ones still count

@@ -41,11 +41,25 @@ def environment_changes(golden_fp: Mapping[str, Any] | None, new_fp: Mapping[str
             lines.append(f"{_dd_path(item)}: {_plain(item.t1)} -> {_plain(item.t2)}")
     for kind in ("dictionary_item_added", "iterable_item_added"):
         for item in dd.get(kind, []):
-            lines.append(f"{_dd_path(item)}: (absent) -> {_plain(item.t2)}")
+            if not _imported_only(item):
+                lines.append(f"{_dd_path(item)}: (absent) -> {_plain(item.t2)}")
     for kind in ("dictionary_item_removed", "iterable_item_removed"):
         for item in dd.get(kind, []):
-            lines.append(f"{_dd_path(item)}: {_plain(item.t1)} -> (absent)")
+            if not _imported_only(item):
+                lines.append(f"{_dd_path(item)}: {_plain(item.t1)} -> (absent)")
     return sorted(lines)
+
+
+#: Always recorded; any other `packages` entry is a library the process happened to import by then.
+_CORE_PACKAGES = ("torch", "numpy", "pyarrow", "trainguard")
+
+
+def _imported_only(item: Any) -> bool:
+    """A library one run had imported and the other had not: it says what was loaded, not what changed
+    (a report plugin, or an earlier test, imports more), so only version changes of libraries both runs
+    imported are reported."""
+    parts = item.path(output_format="list")
+    return len(parts) == 2 and parts[0] == "packages" and parts[1] not in _CORE_PACKAGES
 
 
 def _dd_path(item: Any) -> str:
