@@ -406,11 +406,9 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
     if data is None:
         data = _read_bytes(path, max_bytes)
     if len(data) > max_bytes:
-        raise GoldenCorruptError(
-            path, f"is {len(data)} bytes, over the {max_bytes}-byte limit for golden files; refusing to load it",
-            "raise the ini option trainguard_max_file_mib if the file is genuine")
+        raise _too_large(path, len(data), max_bytes)
     limits = read_limits(max_bytes)
-    raise_limit = "raise the ini option trainguard_max_file_mib if the file is genuine"
+    raise_limit = _RAISE_LIMIT
     try:
         bounds = measure(data, limits["page"])
     except OverLimitError as exc:
@@ -471,6 +469,14 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
     return FileRead(table, meta, version, run_id)
 
 
+_RAISE_LIMIT = "raise the ini option trainguard_max_file_mib if the file is genuine"
+
+
+def _too_large(path: Path, size: int, max_bytes: int) -> GoldenCorruptError:
+    return GoldenCorruptError(path, f"is {size} bytes, over the {max_bytes}-byte limit for golden files; refusing to "
+                              "load it", _RAISE_LIMIT)
+
+
 def _read_bytes(path: Path, max_bytes: int) -> bytes:
     if path.is_symlink():
         raise GoldenCorruptError(path, "is a symbolic link; goldens must be regular files", "replace it with the real file")
@@ -484,9 +490,7 @@ def _read_bytes(path: Path, max_bytes: int) -> bytes:
         with os.fdopen(fd, "rb") as fh:
             size = os.fstat(fh.fileno()).st_size
             if size > max_bytes:
-                raise GoldenCorruptError(
-                    path, f"is {size} bytes, over the {max_bytes}-byte limit for golden files; refusing to load it",
-                    "raise the ini option trainguard_max_file_mib if the file is genuine")
+                raise _too_large(path, size, max_bytes)
             return fh.read(max_bytes + 1)
     except OSError as exc:
         raise GoldenCorruptError(path, f"cannot be read ({short_error(exc)})") from None
@@ -520,7 +524,7 @@ def _check_cells(path: Path, table: Any, strings: list[str], limits: dict[str, i
             raise GoldenCorruptError(path, f"column {name!r} refers to dictionary entries that do not exist") from None
     if total > limits["strings"]:
         raise GoldenCorruptError(path, f"holds {total} bytes of text once decoded, over the {limits['strings']}-byte "
-                                 "limit", "raise the ini option trainguard_max_file_mib if the file is genuine")
+                                 "limit", _RAISE_LIMIT)
     for name, cap in (("shape", limits["dims"]), ("sketch", limits["sketch"])):
         if name in table.column_names:
             lengths = list_lengths(table.column(name))
@@ -691,8 +695,7 @@ def metrics_from_table(path: Path, table: Any, max_names: int | None = None) -> 
         raise GoldenCorruptError(path, "has empty (null) cells in metric, step or value")
     if max_names is not None and len(names) > max_names:
         raise GoldenCorruptError(path, f"holds {len(names)} metric names, more than the {max_names} allowed "
-                                 "(file size limit / 256)",
-                                 "raise the ini option trainguard_max_file_mib if the file is genuine")
+                                 "(file size limit / 256)", _RAISE_LIMIT)
     out: dict[str, MetricSeries] = {}
     if not len(codes):
         return out
