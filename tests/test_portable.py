@@ -116,3 +116,13 @@ def test_pins_record_what_they_replaced():
     assert {k: env[k] for k in dispatch.PORTABLE_PINS} == dispatch.PORTABLE_PINS and env["PATH"] == "/bin"
     assert dispatch.mismatch({"portable": {"pins": {}}}, {}) and dispatch.mismatch({}, {"portable": {"x": 1}})
     assert dispatch.mismatch({}, {}) == "" and dispatch.mismatch({"portable": {"a": 1}}, {"portable": {"a": 1}}) == ""
+
+
+def test_a_machine_that_cannot_run_the_baseline_is_named_and_its_goldens_marked():
+    assert dispatch.baseline_problem("x86_64", ["sse4_1", "avx2"]) == ""
+    assert "not x86-64" in dispatch.baseline_problem("aarch64", [])
+    assert "SSE4.1" in dispatch.baseline_problem("x86_64", ["sse2"])
+    marked = {dispatch.FINGERPRINT_KEY: dispatch.unavailable("aarch64")}
+    pinned = {dispatch.FINGERPRINT_KEY: dispatch.record({}, "DEFAULT")}
+    assert dispatch.mismatch(pinned, marked)  # a portable golden never silently matches an unpinned run
+    assert dispatch.mismatch(marked, {}) == ""  # both ran unpinned: compared as usual

@@ -43,6 +43,27 @@ _BASELINE_CAPABILITY = "DEFAULT"
 FINGERPRINT_KEY = "portable"
 
 
+#: Architectures the pins mean something on, and the instruction set they pin to.
+_X86 = ("x86_64", "amd64", "x64")
+_BASELINE_FLAG = "sse4_1"
+
+
+def baseline_problem(machine: str | None = None, flags: list[str] | None = None) -> str:
+    """Why this machine cannot run the pinned baseline ('' when it can): not x86-64, or no SSE4.1."""
+    import platform
+
+    from .machine import cpu
+
+    machine = machine if machine is not None else platform.machine()
+    if machine.lower() not in _X86:
+        return (f"this machine is {machine}, not x86-64: the pins describe x86-64 code paths, so its results cannot "
+                "match portable goldens blessed on x86-64")
+    known = flags if flags is not None else cpu().get("flags")
+    if known and _BASELINE_FLAG not in known:
+        return "this CPU lacks SSE4.1, the instruction set portable mode pins oneDNN to"
+    return ""
+
+
 def pin(environ: MutableMapping[str, str] | None = None) -> dict[str, str]:
     """Set the pins; returns the values they replaced (the user's own dispatch settings), for the record."""
     env = os.environ if environ is None else environ
@@ -87,10 +108,20 @@ def record(replaced: Mapping[str, str], capability: str) -> dict[str, Any]:
             "cpu_capability": capability}
 
 
+def unavailable(reason: str) -> dict[str, Any]:
+    """The fingerprint entry of a run that asked for portable mode on a machine that cannot pin: it ran unpinned."""
+    return {"unavailable": reason}
+
+
+def _pinned(fp: Mapping[str, Any] | None) -> bool:
+    entry = (fp or {}).get(FINGERPRINT_KEY)
+    return isinstance(entry, Mapping) and bool(entry) and "unavailable" not in entry
+
+
 def mismatch(golden_fp: Mapping[str, Any] | None, new_fp: Mapping[str, Any] | None) -> str:
     """Why a run and a golden cannot be compared bit for bit because one is portable and the other not ('' if they can)."""
-    g = bool((golden_fp or {}).get(FINGERPRINT_KEY))
-    n = bool((new_fp or {}).get(FINGERPRINT_KEY))
+    g = _pinned(golden_fp)
+    n = _pinned(new_fp)
     if g == n:
         return ""
     if g:

@@ -86,7 +86,14 @@ def pytest_configure(config: pytest.Config) -> None:
                                     f"tests on {dispatch.PORTABLE_THREADS} thread (oneMKL's reproducible branch "
                                     "needs a fixed count); drop one of the two")
         guard.portable = True
-        guard.portable_replaced = dispatch.pin()  # before test modules import torch and run kernels
+        problem = dispatch.baseline_problem()
+        if problem:  # run unpinned, say so, and mark the goldens (a portable golden never matches them silently)
+            guard.portable_unavailable = problem
+            config.issue_config_time_warning(pytest.PytestWarning(
+                f"trainguard: portable mode is unavailable here ({problem}); guarded tests run unpinned and their "
+                "goldens are marked so"), stacklevel=2)
+        else:
+            guard.portable_replaced = dispatch.pin()  # before test modules import torch and run kernels
     manager.register(guard, GuardPlugin.NAME)
     if shard is not None:
         manager.register(ShardPlugin(*shard), ShardPlugin.NAME)
@@ -165,10 +172,14 @@ def trajectory(request: pytest.FixtureRequest) -> Iterator[Any]:
         if portable:
             from ...core import dispatch
 
-            threads = dispatch.PORTABLE_THREADS
+            assert guard is not None
+            if not guard.portable_unavailable:
+                threads = dispatch.PORTABLE_THREADS
         guarded_setup(settings.seed, deterministic, threads=threads)
         fp = fingerprint()
-        if portable:
+        if portable and guard is not None and guard.portable_unavailable:
+            fp[dispatch.FINGERPRINT_KEY] = dispatch.unavailable(guard.portable_unavailable)
+        elif portable:
             assert guard is not None
             if guard.portable_capability is None:
                 try:
