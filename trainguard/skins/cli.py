@@ -460,7 +460,8 @@ def build_parser() -> argparse.ArgumentParser:
                         "if they start with '-'), e.g. tests/")
     p.set_defaults(func=cmd_prune)
     p = sub.add_parser("upgrade-goldens", help="convert goldens written by an older trainguard to the current "
-                       "format (adds content digests); idempotent, each folder switched atomically")
+                       "format (adds content digests) after you reviewed them: it vouches for their content; idempotent, each "
+                       "folder switched atomically")
     p.add_argument("dir", nargs="?", metavar="DIR",
                    help="golden dir (default: the ini option trainguard_golden_dir, else ./golden)")
     p.set_defaults(func=cmd_upgrade_goldens)
