@@ -83,6 +83,12 @@ def _fresh(pristine, tmp_path: Path) -> Path:
     return folder
 
 
+def _restore(folder: Path, original: dict[str, bytes]) -> None:
+    """Put the pristine golden files back before the next case damages one."""
+    for name in FILES:
+        (folder / name).write_bytes(original[name])
+
+
 # -- 1. raw bytes --------------------------------------------------------------------------------
 
 _edit = st.one_of(
@@ -116,8 +122,7 @@ def test_fuzz_byte_flips_truncations_and_insertions(pristine, tmp_path):
     @FUZZ
     @given(name=st.sampled_from(FILES), edits=st.lists(_edit, min_size=1, max_size=4))
     def case(name, edits):
-        for n in FILES:
-            (folder / n).write_bytes(original[n])
+        _restore(folder, original)
         damaged = _apply(original[name], edits)
         (folder / name).write_bytes(damaged)
         run = tally.read(folder)
@@ -167,8 +172,7 @@ def test_fuzz_metadata_rewrites_with_random_and_deeply_nested_json(pristine, tmp
                              st.sampled_from([b"3", b"-1", b"02", b"", b"\xff", b"99999999999999999999"])),
            run_id=st.one_of(st.just(b"keep"), st.none(), st.binary(max_size=70)))
     def case(name, meta, reseal, version, run_id):
-        for n in FILES:
-            (folder / n).write_bytes(original[n])
+        _restore(folder, original)
         table = tables[name]
         md = dict(table.schema.metadata)
         md[golden_format.KEY_META] = meta
@@ -225,8 +229,7 @@ def test_fuzz_tables_of_random_column_types(pristine, tmp_path):
     @FUZZ
     @given(name=st.sampled_from(FILES), data=st.data(), reseal=st.booleans())
     def case(name, data, reseal):
-        for n in FILES:
-            (folder / n).write_bytes(original[n])
+        _restore(folder, original)
         rows = data.draw(st.integers(0, 6))
         expected = golden_format.schema_of(name)
         columns = {}
@@ -270,8 +273,7 @@ def test_fuzz_cell_values_behind_a_valid_digest(pristine, tmp_path):
     @FUZZ
     @given(name=st.sampled_from(FILES), data=st.data())
     def case(name, data):
-        for n in FILES:
-            (folder / n).write_bytes(original[n])
+        _restore(folder, original)
         table = tables[name]
         for _ in range(data.draw(st.integers(1, 3))):
             field = table.schema.field(data.draw(st.integers(0, table.num_columns - 1)))
@@ -357,8 +359,7 @@ def test_fuzz_structure_encodings_list_lengths_and_metadata_fields(pristine, tmp
     @FUZZ
     @given(name=st.sampled_from(FILES), data=st.data())
     def case(name, data):
-        for n in FILES:
-            (folder / n).write_bytes(original[n])
+        _restore(folder, original)
         table, meta, options = data.draw(_structure(tables[name]))
         run_id = tables[name].schema.metadata[golden_format.KEY_RUN_ID].decode()
         targets = FILES if data.draw(st.booleans()) else (name,)  # metadata of the whole set, or one file

@@ -303,7 +303,7 @@ def check_root(root: Path, what: str) -> None:
     """Refuse to write into a root folder that is a symbolic link (writes would land wherever it points)."""
     if root.is_symlink():
         raise GoldenCorruptError(root, f"is a symbolic link; trainguard does not write {what} through links",
-                          f"give the real folder instead: {os.path.realpath(root)}")
+                                 f"give the real folder instead: {os.path.realpath(root)}")
 
 
 def write_confined(root: Path, relpath: str, data: bytes | str | Callable[[Path], None], what: str,

@@ -360,12 +360,19 @@ def parquet_writer(kind: str, table: Any) -> Callable[[Path], None]:
 
 
 class FileRead:
-    """One verified golden file: its Arrow table, metadata, format version and run id (None in format 1)."""
+    """One verified golden file: its Arrow table, metadata, format version, run id (None in format 1),
+    and the limits it was read under (which the conversion to records keeps applying)."""
 
-    __slots__ = ("table", "meta", "version", "run_id")
+    __slots__ = ("table", "meta", "version", "run_id", "limits")
 
-    def __init__(self, table: Any, meta: GoldenMeta, version: int, run_id: str | None) -> None:
+    def __init__(self, table: Any, meta: GoldenMeta, version: int, run_id: str | None,
+                 limits: dict[str, int] | None = None) -> None:
         self.table, self.meta, self.version, self.run_id = table, meta, version, run_id
+        self.limits = limits or read_limits(DEFAULT_MAX_FILE_BYTES)
+
+    def metrics(self, path: Path) -> dict[str, MetricSeries]:
+        """The metric series of a `metrics.parquet` read, with the same limit on distinct names."""
+        return metrics_from_table(path, self.table, max_names=self.limits["records"])
 
 
 def read_limits(max_bytes: int) -> dict[str, int]:
@@ -466,7 +473,7 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
     run_id = None
     if version >= 2:
         run_id = _check_digest(path, kind, table, raw, commands or current())
-    return FileRead(table, meta, version, run_id)
+    return FileRead(table, meta, version, run_id, limits)
 
 
 _RAISE_LIMIT = "raise the ini option trainguard_max_file_mib if the file is genuine"

@@ -126,9 +126,7 @@ class GoldenStore:
             for attempt in range(_READ_ATTEMPTS):
                 files = files_of.resolve()
                 record = files_of.read_commit()
-                for kind in (fmt.METRICS_FILE, fmt.STATE_FILE):
-                    if kind not in files:
-                        raise GoldenCorruptError(folder / kind, "is missing while its sibling golden file exists")
+                _require_pair(folder, files)
                 reads = {kind: self._read_file(path, kind, accept_format_1) for kind, path in files.items()}
                 ids = [(kind, r.run_id) for kind, r in reads.items()]
                 if record is not None and any(r != record["run_id"] for _, r in ids):
@@ -136,7 +134,7 @@ class GoldenStore:
                                              f"{record['run_id']}); trainguard never writes such a record",
                                              f"remove {folder / COMMIT_FILE} and any .tmp-* files beside it")
                 if len({r for _, r in ids}) == 1:
-                    return _run_from(files, reads, self.max_bytes)
+                    return _run_from(files, reads)
                 time.sleep(0.005 * (attempt + 1))  # a writer without a lock (Windows) may be mid-switch
         finally:
             lock.__exit__(None, None, None)
@@ -157,20 +155,18 @@ class GoldenStore:
             return fmt.tensors_from_table(path, got.table), got.meta
         if kind == fmt.TRACE_FILE:
             return fmt.trace_from_table(path, got.table), got.meta
-        return fmt.metrics_from_table(path, got.table, fmt.read_limits(self.max_bytes)["records"]), got.meta
+        return got.metrics(path), got.meta
 
     def read_snapshot(self, folder: Path, blobs: dict[str, bytes]) -> Run:
         """A golden from file contents held in memory (a commit's, for `trainguard audit`), read with the
         same limits and checks as a file on disk; format 1 is accepted, since history is only reported."""
         files = {kind: folder / kind for kind in blobs}
-        for kind in (fmt.METRICS_FILE, fmt.STATE_FILE):
-            if kind not in blobs:
-                raise GoldenCorruptError(folder / kind, "is missing while its sibling golden file exists")
+        _require_pair(folder, blobs)
         reads = {kind: fmt.read_file(files[kind], kind, self.max_bytes, self.commands, data=data, accept_format_1=True)
                  for kind, data in blobs.items()}
         if len({r.run_id for r in reads.values()}) != 1:
             raise GoldenCorruptError(folder, "holds files from different writes; the set is mixed")
-        return _run_from(files, reads, self.max_bytes)
+        return _run_from(files, reads)
 
     def _read_file(self, path: Path, kind: str, accept_format_1: bool = False) -> fmt.FileRead:
         return fmt.read_file(path, kind, self.max_bytes, self.commands, accept_format_1=accept_format_1)
@@ -334,9 +330,15 @@ class GoldenStore:
         return fmt.seal(kind, table, raw_meta.get(fmt.KEY_META, b"{}"), run_id)
 
 
-def _run_from(files: dict[str, Path], reads: dict[str, fmt.FileRead], max_bytes: int) -> Run:
-    metrics = fmt.metrics_from_table(files[fmt.METRICS_FILE], reads[fmt.METRICS_FILE].table,
-                                     max_names=fmt.read_limits(max_bytes)["records"])
+def _require_pair(folder: Path, present: Iterable[str]) -> None:
+    """Metrics and state are always written together: one without the other is a damaged golden."""
+    for kind in (fmt.METRICS_FILE, fmt.STATE_FILE):
+        if kind not in present:
+            raise GoldenCorruptError(folder / kind, "is missing while its sibling golden file exists")
+
+
+def _run_from(files: dict[str, Path], reads: dict[str, fmt.FileRead]) -> Run:
+    metrics = reads[fmt.METRICS_FILE].metrics(files[fmt.METRICS_FILE])
     tensors = fmt.tensors_from_table(files[fmt.STATE_FILE], reads[fmt.STATE_FILE].table)
     trace = (fmt.trace_from_table(files[fmt.TRACE_FILE], reads[fmt.TRACE_FILE].table)
              if fmt.TRACE_FILE in reads else None)
@@ -438,7 +440,7 @@ def read_metrics(path: str | os.PathLike[str], max_bytes: int = fmt.DEFAULT_MAX_
     """Read one `metrics.parquet`: the series by metric name, and the file's metadata."""
     path = Path(path)
     got = fmt.read_file(path, fmt.METRICS_FILE, max_bytes)
-    return fmt.metrics_from_table(path, got.table), got.meta
+    return got.metrics(path), got.meta
 
 
 def read_state(path: str | os.PathLike[str], max_bytes: int = fmt.DEFAULT_MAX_FILE_BYTES) -> tuple[dict[str, TensorRecord], Any]:
