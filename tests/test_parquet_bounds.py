@@ -77,3 +77,25 @@ def test_malformed_footers_are_refused(damage):
         data[-8 - n + 4:-8] = b"\x00" * (n - 4)
     with pytest.raises(BoundsError):
         measure(bytes(data), 1 << 30)
+
+
+@pytest.mark.parametrize("options", OPTIONS)
+def test_a_table_with_no_rows_measures_as_empty(options):
+    # pyarrow writes a zero-row row group whose chunks have no pages (data offset 0), or only a
+    # dictionary page; a golden of a test that recorded metrics but no state is such a file.
+    import copy
+
+    buf = io.BytesIO()
+    pq.write_table(_table(0), buf, **copy.deepcopy(options))  # pyarrow fills in the nested dicts it is given
+    bounds = measure(buf.getvalue(), 1 << 30)
+    assert bounds.num_rows == pq.ParquetFile(io.BytesIO(buf.getvalue())).metadata.num_rows == 0
+    assert all(c.slots == 0 for c in bounds.chunks)
+
+
+def test_a_golden_without_state_entries_reads_back(tmp_path):
+    from trainguard.core import store
+    from trainguard.core.records import MetricSeries, Run
+
+    store.write_run(tmp_path / "g", Run(metrics={"loss": MetricSeries([0, 1], [0.8, 0.6])}))
+    back = store.read_run(tmp_path / "g")
+    assert back.tensors == {} and list(back.metrics["loss"].values) == [0.8, 0.6]

@@ -333,7 +333,11 @@ def _chunk(data: bytes, md: dict[int, object], footer_start: int, max_page_bytes
     compressed = _int(md, 7, "total_compressed_size")
     data_off = _int(md, 9, "data_page_offset")
     dict_off = _int(md, 11, "dictionary_page_offset", required=False)
+    if num_values == 0 and compressed == 0:  # a chunk of a row group with no rows: pyarrow writes no pages
+        return ChunkBounds(name, _int(md, 1, "type"))
     first = dict_off if 0 < dict_off < data_off else data_off
+    if num_values == 0 and data_off == 0 and dict_off > 0:  # no rows, only a dictionary page (data offset 0)
+        first = dict_off
     end = first + compressed
     if num_values < 0 or compressed < 0 or first < 4 or end > footer_start:
         raise BoundsError(f"column {name!r} declares pages outside the file's data")
