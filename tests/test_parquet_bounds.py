@@ -3,6 +3,7 @@ reading of the same files (pyarrow as the reference implementation of the Apache
 
 from __future__ import annotations
 
+import copy
 import io
 import struct
 
@@ -33,7 +34,7 @@ OPTIONS = [dict(), dict(use_dictionary=False, compression="none"), dict(row_grou
 @pytest.mark.parametrize("options", OPTIONS)
 def test_value_counts_match_pyarrow_for_every_column_chunk(options):
     buf = io.BytesIO()
-    pq.write_table(_table(50), buf, **options)
+    pq.write_table(_table(50), buf, **copy.deepcopy(options))  # pyarrow fills in nested dicts
     data = buf.getvalue()
     bounds = measure(data, 1 << 30)
     md = pq.ParquetFile(io.BytesIO(data)).metadata
@@ -83,8 +84,6 @@ def test_malformed_footers_are_refused(damage):
 def test_a_table_with_no_rows_measures_as_empty(options):
     # pyarrow writes a zero-row row group whose chunks have no pages (data offset 0), or only a
     # dictionary page; a golden of a test that recorded metrics but no state is such a file.
-    import copy
-
     buf = io.BytesIO()
     pq.write_table(_table(0), buf, **copy.deepcopy(options))  # pyarrow fills in the nested dicts it is given
     bounds = measure(buf.getvalue(), 1 << 30)
