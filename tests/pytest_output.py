@@ -35,3 +35,26 @@ def outcomes(result: pytest.RunResult) -> dict[str, str]:
         if m:
             found.setdefault(m.group(1), m.group(2))  # first word wins (a setup ERROR stays ERROR)
     return found
+
+
+def generated_project(tmp_path, monkeypatch, files: dict[str, str], ini: str = "trainguard_golden_dir = golden\n"):
+    """A throwaway pytest project for end-to-end runs, made the working directory. Its runs need
+    no hypothesis or xdist (skipping them saves about 1 s per process), and Python's hash seed
+    is left to each run."""
+    (tmp_path / "pytest.ini").write_text("[pytest]\n" + ini)
+    for name, text in files.items():
+        (tmp_path / name).write_text(text)
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setenv("PYTEST_ADDOPTS", "-p no:hypothesispytest -p no:xdist")
+    monkeypatch.delenv("PYTHONHASHSEED", raising=False)
+    return tmp_path
+
+
+def run_pytest(project, *args: str, env: dict[str, str] | None = None):
+    """`python -m pytest -q ARGS` in a fresh process in `project`, with extra environment variables."""
+    import os
+    import subprocess
+    import sys
+
+    return subprocess.run([sys.executable, "-m", "pytest", "-p", "no:cacheprovider", "-q", *args], cwd=project,
+                          capture_output=True, text=True, env={**os.environ, **(env or {})})

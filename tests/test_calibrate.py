@@ -1,5 +1,5 @@
 """`trainguard calibrate`: spread analysis and proposal on synthetic runs (fast), and the
-command end to end on a generated project (slow: each calibration starts 6 pytest processes).
+command end to end on a generated project (slow: each calibration starts 11 pytest processes).
 
 The generated project is an invented greenhouse whose vent controller learns how far to
 open the roof vents. One test is seeded and deterministic; the other has a "flaky
@@ -12,14 +12,13 @@ from __future__ import annotations
 
 import hashlib
 import re
-import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from pytest_output import generated_project, run_pytest
 
 from trainguard.core import paths
 from trainguard.core import store as golden
@@ -78,9 +77,20 @@ def test_thread_only_difference_is_not_called_nondeterministic():
     assert not cal.bitwise and cal.fixed_difference is None
     assert cal.per_run["baseline 2"] is None
     assert cal.per_run["threads=1"].where == "metric 'loss' at step 2"
-    # largest relative spread 3.5e-7 (loss at step 2) x safety 10, rounded up -> 4e-06; nothing near zero moved
-    assert cal.proposal.rtol == 4e-06 and cal.proposal.atol == DEFAULT_ATOL
-    assert cal.marker_line() == "@pytest.mark.trainguard(seed=5, rtol=4e-06, atol=1e-08)"
+    # The overall pair comes from the state: vent.weight[1] = -0.2 (above the entry's RMS 0.158)
+    # moved by 2e-7 of itself -> 10 x 2e-7 -> rtol 2e-06; nothing left for atol.
+    assert cal.proposal.rtol == 2e-06 and cal.proposal.atol == DEFAULT_ATOL
+    # The loss gets its own: its step-2 value 0.25 is below the series' RMS, so its spread
+    # (0.25 x 3.5e-7) counts against the RMS for rtol, and atol takes the rest (README's rule,
+    # recomputed here by hand with NumPy).
+    loss = np.array([0.9, 0.5, 0.25])
+    d = 0.25 * 3.5e-7
+    rms = float(np.sqrt(np.mean(loss ** 2)))
+    own = cal.metric_proposals["loss"]
+    assert own.rtol == round_up(10 * d / rms)
+    assert own.atol == round_up(10 * (d - d / rms * 0.25))
+    assert cal.marker_line() == (f'@pytest.mark.trainguard(seed=5, rtol=2e-06, atol=1e-08, metrics={{"loss": '
+                                 f'{{"rtol": {own.rtol:g}, "atol": {own.atol:g}}}}})')
 
 
 def test_first_difference_with_everything_fixed_is_the_earliest_step():
@@ -155,13 +165,34 @@ def test_plan_varies_threads_deterministic_mode_and_hash_seed():
     specs, notes = plan(meta, runs=3, hash_seed="0", cpu_count=8)
     labels = [s.label for s in specs]
     assert labels == ["baseline 2", "baseline 3", "threads=1 #1", "threads=1 #2", "threads=8 #1", "threads=8 #2",
-                      "nondeterministic #1", "nondeterministic #2", "hashseed=1 #1", "hashseed=1 #2"]
-    assert dict(specs[-1].setting.env) == {"PYTHONHASHSEED": "1"}
+                      "nondeterministic #1", "nondeterministic #2", "hashseed=1 #1", "hashseed=1 #2",
+                      "dispatch=sse4.2 #1", "dispatch=sse4.2 #2", "dispatch=mkl-compatible #1",
+                      "dispatch=mkl-compatible #2", "planted lr:0.001", "planted lr:0.01", "planted params:0.0001"]
+    assert dict(specs[9].setting.env) == {"PYTHONHASHSEED": "1"}
+    assert dict(specs[10].setting.env) == {"PYTHONHASHSEED": "0", "MKL_ENABLE_INSTRUCTIONS": "SSE4_2",
+                                           "ATEN_CPU_CAPABILITY": "default", "ONEDNN_MAX_CPU_ISA": "SSE41"}
+    assert dict(specs[12].setting.env)["MKL_CBWR"] == "COMPATIBLE"
+    assert [s.setting.required for s in specs if s.setting.plant] == [False, True, False]
+    assert specs[-2].setting.args == ("--trainguard-plant=lr:0.01",)
     assert "--trainguard-nondeterministic" in specs[6].setting.args and not notes
     assert thread_counts(2, 2) == [1, 4]  # never the baseline's own count
     assert thread_counts(1, 1) == [2, 3]
     specs, notes = plan({"deterministic": False, "fingerprint": {"threads": {"intra_op": 1}}}, 2, "0", 1)
     assert "nondeterministic" not in [s.label for s in specs] and "already turns it off" in notes[0]
+
+
+def test_plan_leaves_pinned_settings_alone():
+    # Portable mode pins threads and dispatch (a contradicting --trainguard-threads is a usage error).
+    portable = {"deterministic": True, "fingerprint": {"threads": {"intra_op": 1}, "portable": {"pins": {}}}}
+    specs, notes = plan(portable, 2, "0", 8)
+    assert [s.label for s in specs] == ["baseline 2", "nondeterministic", "hashseed=1", "planted lr:0.001",
+                                        "planted lr:0.01", "planted params:0.0001"]
+    assert "portable mode, which pins both" in notes[0]
+    # Off x86-64 the dispatch settings mean nothing: said, not run.
+    specs, notes = plan({"fingerprint": {"threads": {"intra_op": 2}}}, 2, "0", 2, x86=False)
+    assert not any(s.label.startswith("dispatch") for s in specs) and "x86-64" in notes[-1]
+    specs, _ = plan({"fingerprint": {"threads": {"intra_op": 2}}}, 2, "0", 2, power=False)
+    assert not any(s.setting.plant for s in specs)
 
 
 def test_written_calibration_is_used_by_the_check(tmp_path):
@@ -237,24 +268,13 @@ GUSTY = "test_vents.py::test_vent_gusty_anemometer"
 
 @pytest.fixture
 def greenhouse(tmp_path, monkeypatch):
-    (tmp_path / "pytest.ini").write_text("[pytest]\ntrainguard_golden_dir = golden\n")
-    (tmp_path / "test_vents.py").write_text(VENTS)
-    monkeypatch.chdir(tmp_path)
-    # The generated runs need no hypothesis or xdist: skip loading them (~1 s per run).
-    monkeypatch.setenv("PYTEST_ADDOPTS", "-p no:hypothesispytest -p no:xdist")
-    monkeypatch.delenv("PYTHONHASHSEED", raising=False)
-    return tmp_path
-
-
-def _pytest(project: Path, *args: str) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "pytest", "-p", "no:cacheprovider", "-q", *args], cwd=project,
-                          capture_output=True, text=True)
+    return generated_project(tmp_path, monkeypatch, {"test_vents.py": VENTS})
 
 
 @pytest.mark.slow
 def test_calibrate_refuses_to_store_a_tolerance_over_the_calibrated_cap(greenhouse, capsys):
     # 3 % jitter is no rounding noise: storing its tolerance would switch the test off for real changes.
-    assert _pytest(greenhouse, "--trainguard-bless", GUSTY).returncode == 0
+    assert run_pytest(greenhouse, "--trainguard-bless", GUSTY).returncode == 0
     folder = paths.golden_folder(greenhouse / "golden", GUSTY)
     before = {p.name: p.read_bytes() for p in folder.iterdir()}
     assert main(["calibrate", GUSTY, "--write", "--jobs", "2"]) == 1
@@ -273,18 +293,25 @@ def test_calibrate_deterministic_test(greenhouse, capsys):
     assert f"pytest --trainguard-bless --trainguard-reason 'describe the intended change' {STEADY}" in err
     assert "done: baseline 2" not in err and "Traceback" not in err
 
+    # In portable mode (kernel dispatch and threads pinned, so not varied) the steady test is
+    # bitwise deterministic on any x86-64 machine; unpinned, another CPU's kernels may move its bits.
+    (greenhouse / "pytest.ini").write_text("[pytest]\ntrainguard_golden_dir = golden\ntrainguard_portable = true\n")
     assert main(["calibrate", STEADY, "--jobs", "2"]) == 0
     out = capsys.readouterr().out
     assert "BITWISE DETERMINISTIC under all variations" in out
-    for label in ("baseline 2", "threads=1", "nondeterministic", "hashseed=1"):
+    assert "not varied: the test runs in portable mode, which pins both" in out
+    for label in ("baseline 2", "nondeterministic", "hashseed=1"):
         assert re.search(rf"^  {re.escape(label)} .*bitwise identical$", out, re.M), label
     assert "@pytest.mark.trainguard(seed=7)\n" in out and "@pytest.mark.trainguard(seed=7, exact=True)" in out
     assert "NOT DETERMINISTIC" not in out
+    # the power checks are judged under the current tolerance, and it catches all three
+    assert "each judged under the current tolerance" in out
+    assert len(re.findall(r"^  planted \S+ .*CAUGHT, first in metric", out, re.M)) == 3, out
 
 
 @pytest.mark.slow
 def test_calibrate_noisy_test_writes_tolerance_that_passes(greenhouse, capsys):
-    assert _pytest(greenhouse, "--trainguard-bless", FLAKY).returncode == 0
+    assert run_pytest(greenhouse, "--trainguard-bless", FLAKY).returncode == 0
     folder = paths.golden_folder(greenhouse / "golden", FLAKY)
     blessed = golden.read_run(folder)
 
@@ -292,33 +319,43 @@ def test_calibrate_noisy_test_writes_tolerance_that_passes(greenhouse, capsys):
     out = capsys.readouterr().out
     assert "NOT DETERMINISTIC even with everything fixed: baseline 1 and baseline 2" in out
     assert "first difference: metric 'loss' at step 2" in out  # the anemometer starts at step 2
-    marker = re.search(r"^  @pytest\.mark\.trainguard\(seed=8, rtol=([0-9.e+-]+), atol=([0-9.e+-]+)\)$", out, re.M)
+    # the loss carries the jitter and gets its own pair; the overall pair comes from the state
+    marker = re.search(r'^  @pytest\.mark\.trainguard\(seed=8, rtol=([0-9.e+-]+), atol=([0-9.e+-]+), metrics=\{.*'
+                       r'"loss": \{"rtol": ([0-9.e+-]+), "atol": ([0-9.e+-]+)\}.*\}\)$', out, re.M)
     assert marker, out
-    rtol, atol = float(marker.group(1)), float(marker.group(2))
+    rtol, atol, loss_rtol, loss_atol = (float(marker.group(i)) for i in range(1, 5))
     assert "safety factor 10" in out
+    assert loss_rtol >= 1e-4 and rtol < loss_rtol  # the jitter (1e-4) does not loosen the state
 
     # stored where the comparison picks it up, with the marker line's numbers; data untouched
     stored = golden.read_run(folder)
-    assert stored.meta["calibrated"]["rtol"] == rtol and stored.meta["calibrated"]["atol"] == atol
-    assert stored.meta["calibrated"]["safety"] == 10
+    cal = stored.meta["calibrated"]
+    assert (cal["rtol"], cal["atol"]) == (rtol, atol)
+    assert cal["metrics"]["loss"] == {"rtol": loss_rtol, "atol": loss_atol}
+    assert cal["safety"] == 10 and {p["plant"]: p["caught"] for p in cal["power"]}["lr:0.01"] is True
     assert stored.meta["seed"] == 8 and np.array_equal(stored.metrics["loss"].values, blessed.metrics["loss"].values)
     assert {t.sha256 for t in stored.tensors.values()} == {t.sha256 for t in blessed.tensors.values()}
 
-    # every kept run: outside the default tolerance, inside the calibrated one; each observed
-    # |diff| from baseline 1 within atol + rtol * |baseline 1|
+    # every kept noise run: outside the default tolerance, inside the calibrated one, each observed
+    # |diff| of the loss from baseline 1 within its atol + rtol * |baseline 1|; every planted run fails
     kept = {p.name: golden.read_run(paths.golden_folder(p, FLAKY)) for p in (greenhouse / "kept").iterdir()}
     threads = [k for k in kept if k.startswith("threads=")]
-    assert len(threads) == 2 and set(kept) - set(threads) == {"baseline-1", "baseline-2", "hashseed=1",
-                                                              "nondeterministic"}
+    planted_runs = [k for k in kept if k.startswith("planted")]
+    assert len(threads) == 2 and len(planted_runs) == 3
+    assert set(kept) - set(threads) - set(planted_runs) == {
+        "baseline-1", "baseline-2", "hashseed=1", "nondeterministic", "dispatch=sse4.2", "dispatch=mkl-compatible"}
     ref = kept["baseline-1"]
     calibrated = calibrated_policy(Policy(), stored.meta)
-    for run in kept.values():
+    for name, run in kept.items():
+        if name in planted_runs:
+            assert compare(stored, run, calibrated).outcome == CHANGED, name
+            continue
         g, v = ref.metrics["loss"].values, run.metrics["loss"].values
-        assert np.all(np.abs(v - g) <= atol + rtol * np.abs(g))
+        assert np.all(np.abs(v - g) <= loss_atol + loss_rtol * np.abs(g))
         assert compare(stored, run, calibrated).outcome in ("identical", CLOSE)
         assert compare(stored, run, Policy()).outcome == CHANGED  # 1e-4 jitter vs rtol 1e-5
 
-    proc = _pytest(greenhouse, FLAKY)
+    proc = run_pytest(greenhouse, FLAKY)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert "within tolerance" in proc.stdout
 

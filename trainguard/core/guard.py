@@ -14,7 +14,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, Sequence
 
-from . import dispatch
+from . import dispatch, planting
 from .comparison import Comparison, compare
 from .errors import GoldenMissingError, TrainguardError, UsageError
 from .fixes import FixCommands
@@ -78,7 +78,11 @@ def check(nodeid: str, run: Run, folder: Path, policy: Policy, bless_command: st
     except TrainguardError as exc:
         result = GuardResult(nodeid, shown, UNREADABLE, run=run, error=str(exc))
     else:
-        why = dispatch.mismatch(reference.meta.get("fingerprint"), run.meta.get("fingerprint"))
+        why = planting.golden_problem(reference.meta.get("fingerprint"))
+        if why:
+            why += "; re-bless it"
+        else:
+            why = dispatch.mismatch(reference.meta.get("fingerprint"), run.meta.get("fingerprint"))
         if why:
             result = GuardResult(nodeid, shown, UNREADABLE, run=run, error=f"{shown}: {why}")
         else:

@@ -109,7 +109,8 @@ def _tolerances(key: str, value: Any) -> Mapping[str, Any]:
 
 
 #: What `trainguard calibrate --write` stores besides the tolerances (report only; never read as numbers).
-_CALIBRATED_INFO = {"safety", "observed", "runs", "deterministic_when_fixed", "calibrated_at", "trainguard"}
+_CALIBRATED_INFO = {"safety", "observed", "runs", "deterministic_when_fixed", "calibrated_at", "trainguard", "power",
+                    "sources"}
 
 
 def _calibrated(key: str, value: Any) -> Mapping[str, Any]:

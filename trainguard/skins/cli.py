@@ -262,7 +262,7 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
 
     return calibrate(args.nodeid, runs=args.runs, safety=args.safety, write=args.write,
                      golden_dir=args.golden_dir, jobs=args.jobs, keep_runs=args.keep_runs,
-                     golden_dir_option=args.golden_dir, out=say)
+                     golden_dir_option=args.golden_dir, out=say, sources=args.sources or ())
 
 
 def cmd_merge_reports(args: argparse.Namespace) -> int:
@@ -433,8 +433,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="keep the temporary folder (frozen reference, each commit's report) and print where it is")
     p.add_argument("nodeids", nargs="+", metavar="NODEID", help="guarded tests to check at each commit")
     p.set_defaults(func=cmd_bisect)
-    p = sub.add_parser("calibrate", help="run a guarded test under noise-only variations (threads, deterministic mode, "
-                       "hash seed), report the spread and propose rtol/atol")
+    p = sub.add_parser("calibrate", help="run a guarded test under noise-only variations (threads, kernel dispatch, "
+                       "deterministic mode, hash seed), report the spread, propose rtol/atol and check that "
+                       "the proposal still catches small planted changes")
     p.add_argument("nodeid", metavar="NODEID", help="one guarded test, e.g. tests/test_x.py::test_y")
     p.add_argument("--runs", type=int, default=2, metavar="N",
                    help="baseline runs (default 2, at least 2); each variation runs N-1 times, at least once")
@@ -447,6 +448,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="runs at a time after the first (default: a quarter of the CPUs, 1 to 4)")
     p.add_argument("--keep-runs", metavar="DIR", help="keep every run's recording in DIR (empty or absent), "
                    "one folder per run, for trainguard show/diff")
+    p.add_argument("--from", dest="sources", nargs="+", metavar="DIR",
+                   help="measure the spread across these folders instead (results folders CI wrote with "
+                        "--trainguard-results on different runners, or the golden folder); the first is the "
+                        "reference. The power checks still run here")
     p.set_defaults(func=cmd_calibrate)
     p = sub.add_parser("merge-reports", help="merge the --trainguard-report folders of CI shards into one")
     p.add_argument("dirs", nargs="+", metavar="DIR", help="report folders (each with summary.json)")

@@ -30,7 +30,7 @@ import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import replace
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Sequence
 
 from ..core.errors import GoldenMissingError, TrainguardError
 from ..core.project import default_golden_dir
@@ -41,6 +41,7 @@ from . import pytest_runs
 from .calibration import (
     DEFAULT_RUNS,
     DEFAULT_SAFETY,
+    REQUIRED_PLANT,
     Calibration,
     RecordedRun,
     RunSpec,
@@ -79,7 +80,33 @@ def thread_counts(baseline_threads: int, cpu_count: int | None) -> list[int]:
     return out
 
 
-def plan(baseline_meta: dict[str, Any], runs: int, hash_seed: str, cpu_count: int | None) -> tuple[list[RunSpec], list[str]]:
+#: Kernel dispatch another machine would choose, imitated on this one (each in a fresh process,
+#: since the libraries read these settings when they start): ATen's and oneDNN's scalar/SSE
+#: code paths with oneMKL limited to SSE4.2 (an older or other-vendor CPU), and oneMKL's
+#: all-processor reproducible branch (oneMKL developer guide, "Conditional Numerical
+#: Reproducibility").
+DISPATCH_VARIATIONS: tuple[tuple[str, str, tuple[tuple[str, str], ...]], ...] = (
+    ("dispatch=sse4.2", "another CPU's kernels: MKL_ENABLE_INSTRUCTIONS=SSE4_2 ATEN_CPU_CAPABILITY=default "
+     "ONEDNN_MAX_CPU_ISA=SSE41",
+     (("MKL_ENABLE_INSTRUCTIONS", "SSE4_2"), ("ATEN_CPU_CAPABILITY", "default"), ("ONEDNN_MAX_CPU_ISA", "SSE41"))),
+    ("dispatch=mkl-compatible", "oneMKL's all-processor branch: MKL_CBWR=COMPATIBLE", (("MKL_CBWR", "COMPATIBLE"),)),
+)
+
+#: Planted changes (core.planting) whose detection the report shows; REQUIRED_PLANT must be caught for --write.
+POWER_PLANTS = (("lr:0.001", False), (REQUIRED_PLANT, True), ("params:0.0001", False))
+
+
+def power_settings(hash_seed: str) -> list[Setting]:
+    """One run per planted change, with the baseline's other settings."""
+    from ..core.planting import parse
+
+    fixed_env = (("PYTHONHASHSEED", hash_seed),)
+    return [Setting(f"planted {spec}", parse(spec).describe(), (f"--trainguard-plant={spec}",), fixed_env,
+                    plant=spec, required=required) for spec, required in POWER_PLANTS]
+
+
+def plan(baseline_meta: dict[str, Any], runs: int, hash_seed: str, cpu_count: int | None,
+         x86: bool = True, power: bool = True) -> tuple[list[RunSpec], list[str]]:
     """The runs after the first baseline run, and notes on variations left out."""
     notes: list[str] = []
     base = baseline_setting(hash_seed)
@@ -87,7 +114,10 @@ def plan(baseline_meta: dict[str, Any], runs: int, hash_seed: str, cpu_count: in
     fp = baseline_meta.get("fingerprint") or {}
     threads = (fp.get("threads") or {}).get("intra_op")
     variations: list[Setting] = []
-    if isinstance(threads, int) and threads >= 1:
+    portable = isinstance(fp.get("portable"), dict) and "unavailable" not in fp["portable"]
+    if portable:
+        notes.append("thread count and kernel dispatch not varied: the test runs in portable mode, which pins both")
+    elif isinstance(threads, int) and threads >= 1:
         for n in thread_counts(threads, cpu_count):
             variations.append(Setting(f"threads={n}", f"--trainguard-threads {n} (baseline: {threads})",
                                       ("--trainguard-threads", str(n)), fixed_env))
@@ -101,11 +131,17 @@ def plan(baseline_meta: dict[str, Any], runs: int, hash_seed: str, cpu_count: in
     other_seed = str((int(hash_seed) + 1) % 2**32)
     variations.append(Setting(f"hashseed={other_seed}", f"PYTHONHASHSEED={other_seed} (another str hash salt)",
                               (), (("PYTHONHASHSEED", other_seed),)))
+    if not portable and x86:
+        variations += [Setting(key, text, (), (*fixed_env, *env)) for key, text, env in DISPATCH_VARIATIONS]
+    elif not portable:
+        notes.append("kernel dispatch not varied: the dispatch settings describe x86-64 code paths")
     specs = [RunSpec(f"baseline {i}", base) for i in range(2, runs + 1)]
     repeats = max(1, runs - 1)
     for v in variations:
         for k in range(1, repeats + 1):
             specs.append(RunSpec(v.key if repeats == 1 else f"{v.key} #{k}", v))
+    if power:
+        specs += [RunSpec(p.key, p) for p in power_settings(hash_seed)]
     return specs, notes
 
 
@@ -150,14 +186,21 @@ def run_once(nodeid: str, spec: RunSpec, scratch: Path, cwd: Path) -> RecordedRu
 
 def run_all(nodeid: str, runs: int, scratch: Path, cwd: Path, jobs: int,
             progress: Callable[[str], None] = lambda line: None,
-            after_first: Callable[[RecordedRun], None] = lambda first: None) -> tuple[list[RecordedRun], list[str]]:
+            after_first: Callable[[RecordedRun], None] = lambda first: None,
+            power_only: bool = False) -> tuple[list[RecordedRun], list[str]]:
     """The first baseline run alone (it tells the test's real node id, thread count and deterministic
-    setting, and `after_first` may refuse to go on), then the rest, `jobs` at a time."""
+    setting, and `after_first` may refuse to go on), then the rest, `jobs` at a time. With
+    `power_only`, only the planted changes follow it (calibrate --from reads the noise runs)."""
+    from ..core.dispatch import baseline_problem
+
     hash_seed = base_hash_seed()
     first = run_once(nodeid, RunSpec("baseline 1", baseline_setting(hash_seed)), scratch, cwd)
     progress(f"  done: baseline 1 ({first.seconds:.1f} s)")
     after_first(first)
-    specs, notes = plan(first.run.meta, runs, hash_seed, os.cpu_count())
+    if power_only:
+        specs, notes = [RunSpec(p.key, p) for p in power_settings(hash_seed)], []
+    else:
+        specs, notes = plan(first.run.meta, runs, hash_seed, os.cpu_count(), x86=not baseline_problem())
 
     def one(spec: RunSpec) -> RecordedRun:
         rec = run_once(nodeid, spec, scratch, cwd)
@@ -173,6 +216,49 @@ def default_jobs(cpu_count: int | None = None) -> int:
     """Runs at a time: a quarter of the CPUs, 1 to 4 (each run uses several threads itself)."""
     return max(1, min(4, (cpu_count if cpu_count is not None else (os.cpu_count() or 1)) // 4))
 
+
+
+def read_folders(nodeid: str, folders: Sequence[str | os.PathLike[str]], seed: Any) -> list[RecordedRun]:
+    """The test's run in each of `folders` (results folders from --trainguard-results, or golden folders),
+    checked to be the same test, seed and dispatch mode, none of them with a planted change."""
+    from ..core import dispatch, planting
+
+    out: list[RecordedRun] = []
+    first_fp: Any = None
+    for i, given in enumerate(folders):
+        root = Path(given)
+        if not root.is_dir():
+            raise TrainguardError(f"--from {given}: no such folder; give the folders --trainguard-results=DIR wrote "
+                                  f"(one per CI runner), or a golden folder")
+        store = GoldenStore(root, read_only=True)
+        folder = store.folder(nodeid)
+        if not store.exists(folder):
+            raise TrainguardError(
+                f"--from {given}: holds no run of {nodeid} (looked in {folder}). --trainguard-results saves only "
+                f"runs that did not match their golden bit for bit, so that runner matched the golden exactly: "
+                f"leave {given} out and give the golden folder instead, which stands for it")
+        run = store.read(folder)  # format, digest and limits checked as for any golden
+        if run.meta.nodeid and run.meta.nodeid != nodeid:
+            raise TrainguardError(f"--from {given}: {folder} holds a run of {run.meta.nodeid}, not of {nodeid}")
+        if run.meta.get("seed") != seed:
+            raise TrainguardError(f"--from {given}: {folder} was recorded with seed {run.meta.get('seed')}, this test "
+                                  f"runs with seed {seed}; runs with other seeds say nothing about noise. Re-run CI "
+                                  "on the current code first")
+        fp = run.meta.get("fingerprint") or {}
+        why = planting.golden_problem(fp)
+        if why:
+            raise TrainguardError(f"--from {given}: {folder}: {why}")
+        if i and dispatch.mismatch(first_fp, fp):
+            raise TrainguardError(f"--from {given}: {folder} and {folders[0]} differ in portable mode (one pinned "
+                                  "kernel dispatch, the other not); calibrate runs of one mode at a time")
+        first_fp = first_fp if i else fp
+        cpu = fp.get("cpu") if isinstance(fp.get("cpu"), dict) else {}
+        where = str(cpu.get("model_name") or cpu.get("vendor") or "machine not recorded")
+        label = f"from {root.name or given}"
+        if any(r.spec.label == label for r in out):
+            label = f"from {given}"
+        out.append(RecordedRun(RunSpec(label, Setting("from", f"{given} ({where})")), run, folder))
+    return out
 
 
 # -- the golden ----------------------------------------------------------------------------
@@ -197,9 +283,17 @@ def write_calibration(folder: Path, calibrated: dict[str, Any] | None, store: Go
 def calibrate(nodeid: str, runs: int = DEFAULT_RUNS, safety: float = DEFAULT_SAFETY, write: bool = False,
               golden_dir: str | os.PathLike[str] | None = None, jobs: int | None = None,
               keep_runs: str | os.PathLike[str] | None = None, cwd: str | os.PathLike[str] | None = None,
-              out: Callable[[str], None] = print, golden_dir_option: str | None = None) -> int:
+              out: Callable[[str], None] = print, golden_dir_option: str | None = None,
+              sources: Sequence[str | os.PathLike[str]] = ()) -> int:
     """Run, analyse, report, and with `write` store the proposal in the golden. Returns an exit status:
-    0 done, 1 no tolerance could be proposed (or written). User mistakes raise TrainguardError."""
+    0 done, 1 no tolerance could be proposed (or written). User mistakes raise TrainguardError.
+
+    With `sources` (calibrate --from), the noise runs are read from those folders (CI's result
+    folders from other runners) instead of being run here; the power checks still run here.
+    """
+    if sources and len(sources) < 2:
+        raise TrainguardError(f"--from needs at least two folders to measure a spread, got {len(sources)}; add the "
+                              "golden folder or another runner's results folder")
     if runs < 2:
         raise TrainguardError(f"--runs must be at least 2 (two identical runs tell whether the test is deterministic "
                               f"with everything fixed), got {runs}")
@@ -235,13 +329,21 @@ def calibrate(nodeid: str, runs: int = DEFAULT_RUNS, safety: float = DEFAULT_SAF
 
     progress(f"trainguard calibrate: running {nodeid} (baseline first, then {jobs} at a time)")
     started = time.perf_counter()
+    power_only = bool(sources)
     if keep is not None:
         keep.mkdir(parents=True, exist_ok=True)
-        recorded, notes = run_all(nodeid, runs, keep, cwd, jobs, progress, refuse_without_golden)
+        recorded, notes = run_all(nodeid, runs, keep, cwd, jobs, progress, refuse_without_golden, power_only)
     else:
         with tempfile.TemporaryDirectory(prefix="trainguard-calibrate-") as tmp:
-            recorded, notes = run_all(nodeid, runs, Path(tmp), cwd, jobs, progress, refuse_without_golden)
-    cal = analyse(nodeid, recorded, safety, notes)
+            recorded, notes = run_all(nodeid, runs, Path(tmp), cwd, jobs, progress, refuse_without_golden, power_only)
+    if sources:
+        local = recorded[0]
+        real = str(local.run.meta.get("nodeid") or nodeid)
+        folders = read_folders(real, sources, local.run.meta.get("seed"))
+        cal = analyse(nodeid, [*folders, *recorded[1:]], safety, notes, power_reference=local)
+        cal.from_folders = True
+    else:
+        cal = analyse(nodeid, recorded, safety, notes)
     cal.seconds = time.perf_counter() - started
     cal.jobs = jobs
     out(format_report(cal))
@@ -266,7 +368,8 @@ def calibrate(nodeid: str, runs: int = DEFAULT_RUNS, safety: float = DEFAULT_SAF
             out("  the test or its environment changed since the golden was blessed; if that change is intended, "
                 f"re-bless first:\n  {fix_bless}")
         else:
-            out(f"\nthe golden {shown} matches all {len(cal.runs)} runs within the proposed tolerance.")
+            noise = sum(1 for r in cal.runs if not r.spec.setting.plant)
+            out(f"\nthe golden {shown} matches all {noise} runs within the proposed tolerance.")
     if not write:
         if cal.proposal is not None:
             out(f"to store the proposal in the golden (used unless the marker sets rtol, atol or exact itself):\n"
@@ -289,6 +392,12 @@ def calibrate(nodeid: str, runs: int = DEFAULT_RUNS, safety: float = DEFAULT_SAF
         return 1
     if golden_problems:
         out(f"\n--write: nothing written to {shown}: with the golden as it is, the test would still fail.")
+        return 1
+    missed = cal.missed()
+    if missed:
+        out(f"\n--write: nothing written to {shown}: the proposal misses the planted change "
+            f"'{missed[0].description}' (it passes as within tolerance), so storing it would let real changes of "
+            "that size through; see the causes and remedies under 'power' above.")
         return 1
     too_loose = _over_caps(cal)
     if too_loose:

@@ -22,7 +22,7 @@ from ..core.meta import utc_stamp
 from ..core.records import Run, TensorRecord
 from ..core.text import table
 from ..core.tolerance import DEFAULT_ATOL, DEFAULT_RTOL, Policy, Tolerance, bitwise_equal
-from ..core.verdicts import CHANGED
+from ..core.verdicts import CHANGED, CLOSE
 from ..core.version import __version__
 
 #: Default safety factor: the proposal is this many times the largest spread observed. A
@@ -31,10 +31,14 @@ from ..core.version import __version__
 DEFAULT_SAFETY = 10.0
 #: Default number of baseline runs (each variation runs `runs - 1` times, at least once).
 DEFAULT_RUNS = 2
-#: "Near zero": below this fraction of the largest magnitude of the same metric or tensor
-#: (or moved by more than its own magnitude). There a relative spread says little (it grows
-#: without bound as the value nears 0), so such values are covered by atol instead of rtol.
-NEAR_ZERO = 1e-3
+#: Largest relative spread (against max(|value|, its entry's RMS)) that rtol takes. Rounding
+#: noise in a value that means something stays orders of magnitude below it (float32 rounds at
+#: 6e-8 per operation; thread and dispatch noise measured here after a few dozen steps: 1e-7 to
+#: 5e-5). An entry moving more than this is noise around zero, and atol covers it. Chosen here,
+#: not taken from a source; MAX_CALIBRATED_RTOL (1e-2) is the hard cap above it.
+NOISE_REL = 1e-3
+#: The planted change a proposal must catch for `--write`: every learning rate 1 % higher.
+REQUIRED_PLANT = "lr:0.01"
 #: Most state entries listed in the report (the rest are counted).
 MAX_TENSOR_ROWS = 15
 
@@ -47,10 +51,12 @@ MAX_TENSOR_ROWS = 15
 class Setting:
     """One way of running the test: extra pytest options and environment variables."""
 
-    key: str  # "baseline", "threads=1", "nondeterministic", "hashseed=1"
+    key: str  # "baseline", "threads=1", "nondeterministic", "hashseed=1", "dispatch=sse4.2", "planted lr:0.01"
     description: str
     args: tuple[str, ...] = ()
     env: tuple[tuple[str, str], ...] = ()
+    plant: str = ""  # a planted change (core.planting spec): a power check, not a noise run
+    required: bool = False  # a power check the proposal must pass for --write
 
 
 @dataclass
@@ -90,16 +96,13 @@ class Spread:
 
     @property
     def scale(self) -> float:
-        finite = np.abs(self.reference[np.isfinite(self.reference)])
-        return float(finite.max()) if finite.size else 0.0
+        """The entry's own magnitude: the root mean square of its finite reference values.
 
-    def near_zero(self) -> np.ndarray:
-        """Values below NEAR_ZERO of the largest magnitude of the same series, or that moved by more
-        than their own magnitude: noise around zero, covered by atol rather than rtol."""
-        mag = np.abs(self.reference)
-        if self.scale <= 0:
-            return np.ones(self.reference.shape, bool)
-        return (mag < NEAR_ZERO * self.scale) | (self.spread > mag)
+        Relative spreads are taken against max(|value|, scale), so that an element near zero
+        (a momentum buffer entry of 1e-9 beside others of 1e-3) cannot make rtol huge: its
+        spread counts against the size of its entry, and atol takes what rtol leaves."""
+        finite = self.reference[np.isfinite(self.reference)]
+        return float(np.sqrt(np.mean(np.square(finite)))) if finite.size else 0.0
 
     @property
     def max_abs(self) -> float:
@@ -110,23 +113,33 @@ class Spread:
             rel = self.spread / np.abs(self.reference)
         return np.where(self.spread == 0, 0.0, rel)
 
+    def scaled_rel(self) -> np.ndarray:
+        """spread / max(|reference|, scale): the relative spread, with the entry's RMS as the floor."""
+        floor = np.maximum(np.abs(self.reference), self.scale)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            rel = self.spread / floor
+        return np.where((self.spread > 0) & (floor > 0) & np.isfinite(rel), rel, 0.0)
+
     def raw_rtol(self) -> tuple[float, int | None]:
-        """Largest relative spread over values away from zero, and where (index)."""
-        mask = ~self.near_zero() & (self.spread > 0)
-        if not mask.any():
+        """Largest scaled relative spread up to NOISE_REL, and where (index); spreads above it are
+        left to atol (values that are themselves rounding residue, e.g. a bias's gradient before a
+        normalisation layer, which is zero in exact arithmetic)."""
+        rel = self.scaled_rel()
+        rel = np.where(rel <= NOISE_REL, rel, 0.0)
+        if not rel.size or not (rel > 0).any():
             return 0.0, None
-        rel = np.where(mask, self.rel(), -1.0)
         i = int(np.argmax(rel))
         return float(rel[i]), i
 
-    def raw_atol(self) -> tuple[float, int | None]:
-        """Largest absolute spread over values near zero, and where (index)."""
-        mask = self.near_zero() & (self.spread > 0)
-        if not mask.any():
+    def raw_atol(self, rtol: float) -> tuple[float, int | None]:
+        """Largest part of a spread that `rtol` x |reference| leaves uncovered, and where (index)."""
+        if not self.spread.size:
             return 0.0, None
-        absd = np.where(mask, self.spread, -1.0)
-        i = int(np.argmax(absd))
-        return float(absd[i]), i
+        with np.errstate(invalid="ignore", over="ignore"):
+            rest = self.spread - rtol * np.abs(self.reference)
+        rest = np.where(np.isfinite(rest) & (self.spread > 0), rest, 0.0)
+        i = int(np.argmax(rest))
+        return (float(rest[i]), i) if rest[i] > 0 else (0.0, None)
 
     @property
     def max_rel(self) -> float:
@@ -202,6 +215,24 @@ class Calibration:
     metric_proposals: dict[str, Proposal]
     seconds: float = 0.0
     jobs: int = 1
+    power: list[PowerCheck] = field(default_factory=list)  # runs with a planted change, judged under the proposal
+    from_folders: bool = False  # the noise runs were read from folders (calibrate --from), not run here
+
+    def missed(self) -> list[PowerCheck]:
+        """Required power checks the tolerance lets through (their plant had an effect)."""
+        return [p for p in self.power if p.required and p.missed]
+
+    def forcing(self) -> list[str]:
+        """Where the proposed tolerances were forced up: the entries their observed spreads came from."""
+        out = []
+        for name, p in [("overall", self.proposal), *sorted(self.metric_proposals.items())]:
+            if p is None:
+                continue
+            if not p.kept_rtol:
+                out.append(f"rtol={_num(p.rtol)} ({name}) from {p.rtol_where} (relative spread {_e(p.raw_rtol)})")
+            if not p.kept_atol:
+                out.append(f"atol={_num(p.atol)} ({name}) from {p.atol_where} (spread {_e(p.raw_atol)})")
+        return out
 
     @property
     def reference(self) -> RecordedRun:
@@ -234,7 +265,10 @@ class Calibration:
             "metrics": {k: {"rtol": p.rtol, "atol": p.atol} for k, p in sorted(self.metric_proposals.items())},
             "safety": self.safety,
             "observed": {"rtol": self.proposal.raw_rtol, "atol": self.proposal.raw_atol},
-            "runs": [{"label": r.spec.label, "setting": r.spec.setting.description} for r in self.runs],
+            "runs": [{"label": r.spec.label, "setting": r.spec.setting.description} for r in self.runs
+                     if not r.spec.setting.plant],
+            "power": [{"plant": p.plant, "effect": p.effect, "caught": p.caught, "where": p.where}
+                      for p in self.power],
             "deterministic_when_fixed": self.fixed_difference is None,
             "calibrated_at": utc_stamp(),
             "trainguard": __version__,
@@ -263,19 +297,22 @@ def round_up(x: float) -> float:
 def propose(spreads: Sequence[Spread], safety: float, current: Tolerance) -> Proposal:
     """The tolerance rule (README, "Calibrating tolerances"):
 
-    rtol = safety x the largest relative spread over values away from zero,
-    atol = safety x the largest absolute spread over values near zero (below NEAR_ZERO of
-    the largest magnitude of the same metric or tensor, or moved by more than their own
-    magnitude), each rounded up to one
-    significant digit. A part with no spread keeps its current value. Then every observed
-    difference d at reference value g satisfies d <= atol + rtol * |g|.
+    rtol = safety x the largest relative spread, each spread taken against max(|value|, the
+    RMS of its metric or entry); atol = safety x the largest part of a spread that this rtol
+    (before the safety factor) leaves uncovered, which only values smaller than their entry's
+    RMS can have. Each is rounded up to one significant digit; a part with no spread keeps its
+    current value. Then every observed difference d at reference value g satisfies
+    d <= atol + rtol * |g|, and a near-zero element cannot inflate rtol: its spread is measured
+    against the size of its entry.
     """
-    raw_rtol, raw_atol, rtol_where, atol_where = 0.0, 0.0, "", ""
+    raw_rtol, rtol_where = 0.0, ""
     for s in spreads:
         r, i = s.raw_rtol()
         if r > raw_rtol:
             raw_rtol, rtol_where = r, s.where(i)
-        a, j = s.raw_atol()
+    raw_atol, atol_where = 0.0, ""
+    for s in spreads:
+        a, j = s.raw_atol(raw_rtol)
         if a > raw_atol:
             raw_atol, atol_where = a, s.where(j)
     return Proposal(
@@ -340,12 +377,18 @@ def _first_difference(label: str, ref: Run, run: Run) -> Difference | None:
 
 
 def analyse(nodeid: str, runs: Sequence[RecordedRun], safety: float = DEFAULT_SAFETY,
-            notes: Sequence[str] = ()) -> Calibration:
-    """Spreads, first differences and the proposed tolerance from recorded runs (runs[0]: reference)."""
-    if len(runs) < 2:
-        raise TrainguardError("calibration needs at least two runs")
+            notes: Sequence[str] = (), power_reference: RecordedRun | None = None) -> Calibration:
+    """Spreads, first differences and the proposed tolerance from recorded runs (runs[0]: reference).
+
+    Runs with a planted change (`Setting.plant`) are power checks, not noise: they take no
+    part in the spread, and are judged under the proposal against `power_reference` (by
+    default runs[0]), which must have run on the same machine as they did.
+    """
+    noise = [r for r in runs if not r.spec.setting.plant]
+    if len(noise) < 2 or noise[0] is not runs[0]:
+        raise TrainguardError("calibration needs at least two runs without a planted change, the first of them first")
     ref = runs[0].run
-    others = runs[1:]
+    others = noise[1:]
     problems: list[str] = []
 
     metrics: list[Spread] = []
@@ -427,19 +470,79 @@ def analyse(nodeid: str, runs: Sequence[RecordedRun], safety: float = DEFAULT_SA
     proposal = None
     metric_proposals: dict[str, Proposal] = {}
     if not bitwise and not problems:
-        proposal = propose([*metrics, *tensors], safety, current)
-        for s in metrics:  # per metric only where it is tighter than the overall proposal
+        # The overall tolerance (state entries, and metrics without their own) from the state's
+        # spread alone; each metric that moved gets its own, so a noisy loss never loosens the
+        # weights' tolerance, nor the weights' noise a metric that stayed put.
+        proposal = propose(tensors, safety, current)
+        for s in metrics:
             if s.max_abs > 0:
                 own = propose([s], safety, Tolerance(proposal.rtol, proposal.atol))
                 if (own.rtol, own.atol) != (proposal.rtol, proposal.atol):
                     metric_proposals[s.name] = own
     seed = ref.meta.get("seed")
-    return Calibration(
+    cal = Calibration(
         nodeid=str(ref.meta.get("nodeid") or nodeid), seed=seed if isinstance(seed, int) else None, safety=safety,
         runs=list(runs), notes=list(notes), metrics=metrics, tensors=tensors, identical_tensors=identical,
         problems=problems, bitwise=bitwise, fixed_difference=fixed_difference, per_run=per_run, current=current,
         current_exact=bool(tol.get("exact", False)), proposal=proposal, metric_proposals=metric_proposals,
     )
+    base = power_reference if power_reference is not None else runs[0]
+    cal.power = [power_check(cal, base, r) for r in runs if r.spec.setting.plant]
+    return cal
+
+
+@dataclass
+class PowerCheck:
+    """Whether the tolerance in question fails a run with a planted change, and where it first does."""
+
+    label: str
+    plant: str
+    description: str
+    required: bool
+    effect: bool  # the plant changed any bit at all (False: the test steps no torch.optim optimizer)
+    caught: bool
+    where: str = ""  # "metric 'loss' at step 3", "state entry 'fc.weight'"
+    step: int | None = None
+    largest: str = ""  # the largest difference the tolerance let through, when not caught
+
+    @property
+    def missed(self) -> bool:
+        return self.effect and not self.caught
+
+
+def judged_policy(cal: Calibration) -> Policy:
+    """The tolerance power checks are judged under: the proposal, else the one in force now."""
+    policy = cal.policy()
+    if policy is not None:
+        return policy
+    return Policy(default=cal.current, exact=cal.current_exact)
+
+
+def power_check(cal: Calibration, reference: RecordedRun, planted: RecordedRun) -> PowerCheck:
+    setting = planted.spec.setting
+    out = PowerCheck(planted.spec.label, setting.plant, setting.description, setting.required,
+                     effect=_first_difference(planted.spec.label, reference.run, planted.run) is not None, caught=False)
+    if not out.effect:
+        return out
+    cmp = compare(reference.run, planted.run, judged_policy(cal))
+    changed = [m for m in cmp.metrics if m.verdict == CHANGED]
+    if changed:
+        first = min(changed, key=lambda m: (m.first_step is None, m.first_step or 0, m.name))
+        out.caught, out.step = True, first.first_step
+        out.where = f"metric {first.name!r}" + (f" at step {first.first_step}" if first.first_step is not None else "")
+        return out
+    tensor = next((t for t in cmp.tensors if t.verdict == CHANGED), None)
+    if tensor is not None:
+        out.caught, out.where = True, f"state entry {tensor.name!r} (final state)"
+        return out
+    moved = [(m.max_abs / max(abs(m.golden), 1e-300) if math.isfinite(m.golden) else 0.0, f"metric {m.name!r}")
+             for m in cmp.metrics if m.verdict == CLOSE]
+    moved += [(t.max_rel if math.isfinite(t.max_rel) else 0.0, f"state entry {t.name!r}")
+              for t in cmp.tensors if t.verdict == CLOSE]
+    if moved:
+        rel, name = max(moved)
+        out.largest = f"{name}, relative {rel:.1e}"
+    return out
 
 
 def check_golden(cal: Calibration, golden_run: Run) -> list[str]:
@@ -449,6 +552,8 @@ def check_golden(cal: Calibration, golden_run: Run) -> list[str]:
         return []
     out = []
     for r in cal.runs:
+        if r.spec.setting.plant:
+            continue  # power checks are meant to fail
         cmp = compare(golden_run, r.run, policy)
         if cmp.outcome != CHANGED:
             continue
@@ -481,12 +586,18 @@ def format_report(cal: Calibration) -> str:
     ref_label = cal.reference.spec.label
     seed = f" (seed {cal.seed})" if cal.seed is not None else ""
     out.append(f"trainguard calibrate: {cal.nodeid}{seed}")
-    out.append(f"{len(cal.runs)} runs in {cal.seconds:.1f} s ({cal.jobs} at a time), each a fresh pytest process "
-               f"blessing into a scratch folder; all compared with {ref_label}")
+    if cal.from_folders:
+        out.append(f"{len(cal.runs)} runs in {cal.seconds:.1f} s: one from each folder given (recorded elsewhere, e.g. "
+                   f"by CI on other runners), power checks here; all compared with {ref_label}")
+    else:
+        out.append(f"{len(cal.runs)} runs in {cal.seconds:.1f} s ({cal.jobs} at a time), each a fresh pytest process "
+                   f"blessing into a scratch folder; all compared with {ref_label}")
     rows = []
     for r in cal.runs:
         if r is cal.reference:
             verdict = "(reference)"
+        elif r.spec.setting.plant:
+            verdict = "power check (below)"
         else:
             d = cal.per_run.get(r.spec.label)
             if d is None:
@@ -500,15 +611,21 @@ def format_report(cal: Calibration) -> str:
         out.append(f"  note: {note}")
     out.append("")
 
-    if cal.bitwise:
+    noise_runs = sum(1 for r in cal.runs if not r.spec.setting.plant)
+    if cal.bitwise and cal.from_folders:
+        out.append(f"BITWISE IDENTICAL across all {noise_runs} folders: every metric value and every state checksum "
+                   f"matches {ref_label}; these machines need no tolerance.")
+    elif cal.bitwise:
         out.append(f"BITWISE DETERMINISTIC under all variations: every metric value and every state checksum of all "
-                   f"{len(cal.runs)} runs is identical to {ref_label} (threads, deterministic mode and hash seed "
-                   f"change nothing).")
+                   f"{noise_runs} runs is identical to {ref_label} (threads, kernel dispatch, deterministic mode and "
+                   f"hash seed change nothing).")
+    if cal.bitwise:
         out.append("proposal: keep the current tolerance "
                    + ("(exact)" if cal.current_exact else f"({cal.current.describe()})")
                    + ", or demand bitwise identity on this machine:")
         out.append(f"  {cal.marker_line()}")
         out.append(f"  {cal.marker_line(exact=True)}")
+        out.extend(_power_lines(cal))
         return "\n".join(out)
 
     fd = cal.fixed_difference
@@ -519,6 +636,9 @@ def format_report(cal: Calibration) -> str:
         out.append("  something in the test reads a source that changes between runs (the clock, os.urandom, an "
                    "unseeded generator, data loader workers, a file or network resource); the tolerance below "
                    "covers the noise seen, but removing the source is better.")
+    elif cal.from_folders:
+        out.append("the folders differ (first differences per folder are listed above); the spread below is what "
+                   "a tolerance must cover across those machines.")
     else:
         out.append("deterministic with everything fixed (identical settings gave identical bits), but not under "
                    "every variation; first differences per run are listed above.")
@@ -568,13 +688,13 @@ def format_report(cal: Calibration) -> str:
     p = cal.proposal
     assert p is not None
     out.append(f"proposed tolerance, safety factor {cal.safety:g} (a common rule of thumb, not a standard): "
-               f"rtol = {cal.safety:g} x the largest relative spread of values away from zero, atol = {cal.safety:g} x "
-               f"the largest absolute spread of values near zero (below {NEAR_ZERO:g} x the largest magnitude of "
-               f"their metric or entry, or moved by more than their own size), rounded up to one significant "
-               f"digit:")
-    out.append(f"  rtol={_num(p.rtol)}  " + ("(current value kept: nothing away from zero moved)" if p.kept_rtol
+               f"rtol = {cal.safety:g} x the largest relative spread, each taken against the larger of the value "
+               f"and the RMS of its metric or entry; atol = {cal.safety:g} x what that leaves uncovered (values "
+               f"smaller than their entry's RMS); rounded up to one significant digit. The overall pair comes from "
+               f"the state entries; each metric that moved gets its own:")
+    out.append(f"  rtol={_num(p.rtol)}  " + ("(current value kept: no state entry moved)" if p.kept_rtol
                                             else f"(observed {_e(p.raw_rtol)} in {p.rtol_where})"))
-    out.append(f"  atol={_num(p.atol)}  " + ("(current value kept: nothing near zero moved)" if p.kept_atol
+    out.append(f"  atol={_num(p.atol)}  " + ("(current value kept: nothing left for atol)" if p.kept_atol
                                             else f"(observed {_e(p.raw_atol)} in {p.atol_where})"))
     if cal.metric_proposals:
         out.append("  per metric: " + ", ".join(f"{k}: rtol={_num(v.rtol)}, atol={_num(v.atol)}"
@@ -584,6 +704,34 @@ def format_report(cal: Calibration) -> str:
                    f"need their own calibration or goldens")
     out.append("ready marker line:")
     out.append(f"  {cal.marker_line()}")
+    out.extend(_power_lines(cal))
     return "\n".join(out)
+
+
+def _power_lines(cal: Calibration) -> list[str]:
+    """The power checks: does the tolerance still fail small real changes, and how early."""
+    if not cal.power:
+        return []
+    judged = "the proposed tolerance" if cal.proposal is not None else "the current tolerance"
+    out = ["", f"power: runs with a small real change planted, each judged under {judged} against the "
+               "baseline run of the same machine:"]
+    rows = []
+    for p in cal.power:
+        if not p.effect:
+            verdict = "no effect (the test steps no torch.optim optimizer, or ignores this change)"
+        elif p.caught:
+            verdict = f"CAUGHT, first in {p.where}"
+        else:
+            verdict = "MISSED: passes as within tolerance" + (f" (largest: {p.largest})" if p.largest else "")
+        rows.append([p.label, p.description + (" (required)" if p.required else ""), verdict])
+    out.append(table(["run", "planted change", "verdict"], rows))
+    if cal.missed():
+        out.append("the tolerance lets a 1 % learning-rate change through: it guards nothing a reviewer cares about. "
+                   "It was forced up by:")
+        out.extend(f"  {line}" for line in cal.forcing() or ["(the tolerance in force, not a proposal)"])
+        out.append("  remedies: a longer run (more steps let a real change grow past the noise); portable mode "
+                   "(--trainguard-portable) with exact=True, so that no noise needs a tolerance; or per-metric "
+                   "tolerances in the marker (metrics={...}) that keep the noisy metric from loosening the rest.")
+    return out
 
 

@@ -55,6 +55,9 @@ def pytest_addoption(parser: pytest.Parser) -> None:
     group.addoption("--trainguard-repeat", metavar="N", type=int, default=1,
                     help="run the body of each guarded test N times with the same seed and settings; runs that "
                          "differ bit for bit fail as 'nondeterministic' (default 1)")
+    group.addoption("--trainguard-plant", metavar="KIND:SIZE", default=None,
+                    help="trainguard calibrate's power check: bless with a small real change planted (lr:0.01 "
+                         "scales every optimizer's learning rate by 1.01); the goldens are marked as scratch")
     parser.addini("trainguard_golden_dir", "folder of golden files, relative to rootdir", default="golden")
     parser.addini("trainguard_rtol", "default relative tolerance of guarded tests", default="")
     parser.addini("trainguard_atol", "default absolute tolerance of guarded tests", default="")
@@ -94,6 +97,19 @@ def pytest_configure(config: pytest.Config) -> None:
                 "goldens are marked so"), stacklevel=2)
         else:
             guard.portable_replaced = dispatch.pin()  # before test modules import torch and run kernels
+    plant = config.getoption("--trainguard-plant", None)
+    if plant:
+        from ...core import planting
+        from ...core.errors import UsageError
+
+        if not config.getoption("--trainguard-bless", False):
+            raise pytest.UsageError(f"--trainguard-plant={plant} only goes with --trainguard-bless into a scratch "
+                                    "folder (trainguard calibrate does this); a planted change is never checked "
+                                    "against real goldens")
+        try:
+            guard.plant = planting.parse(plant)
+        except UsageError as exc:
+            raise pytest.UsageError(str(exc)) from None
     manager.register(guard, GuardPlugin.NAME)
     if shard is not None:
         manager.register(ShardPlugin(*shard), ShardPlugin.NAME)
@@ -187,8 +203,17 @@ def trajectory(request: pytest.FixtureRequest) -> Iterator[Any]:
                 except UsageError as exc:
                     GuardPlugin.fail(f"{request.node.nodeid}: {exc}")
             fp[dispatch.FINGERPRINT_KEY] = dispatch.record(guard.portable_replaced, guard.portable_capability)
+        plant = guard.plant if guard is not None else None
+        if plant is not None:
+            from ...core import planting
+
+            fp[planting.FINGERPRINT_KEY] = plant.spec
         Pending.attach(request.node, Pending(traj, settings, fp))
-        yield traj
+        if plant is None:
+            yield traj
+        else:
+            with planting.planted(plant):
+                yield traj
     finally:
         traj.close()
         saved.restore()

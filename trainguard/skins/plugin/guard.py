@@ -35,6 +35,7 @@ class GuardPlugin:
         self.portable = False  # portable mode: kernel dispatch pinned at configure (core.dispatch)
         self.portable_replaced: dict[str, str] = {}  # the user's own dispatch settings the pins replaced
         self.portable_capability: str | None = None  # verified once, at the first guarded test
+        self.plant: Any = None  # --trainguard-plant: a core.planting.Plant (calibrate's power check)
         self.portable_unavailable = ""  # why this machine cannot pin (not x86-64, no SSE4.1): runs unpinned
 
     @classmethod
