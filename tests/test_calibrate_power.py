@@ -319,8 +319,9 @@ def test_calibrate_from_result_folders_of_two_runners(tmp_path, monkeypatch, cap
     assert main(["calibrate", FLAKY, "--from", "golden", "ci-intel", "ci-amd", "--write", "--jobs", "2"]) == 0
     out = capsys.readouterr().out
     assert "one from each folder given" in out
-    for label in ("from golden", "from ci-intel", "from ci-amd"):
-        assert re.search(rf"^  {label} ", out, re.M), label
+    assert "all compared with golden" in out
+    for label in ("golden", "ci-intel", "ci-amd"):
+        assert re.search(rf"^  {label} +read from {label}, recorded on ", out, re.M), label
     assert "CAUGHT" in _power_row(out, "lr:0.01")
     stored = golden.read_run(paths.golden_folder(tmp_path / "golden", FLAKY))
     assert stored.meta["calibrated"]["metrics"]["loss"]["rtol"] >= 1e-5

@@ -100,6 +100,24 @@ def test_a_report_of_rounding_drift_on_another_cpu_leads_with_the_machine():
     assert "to accept this machine's numbers instead, re-bless it:" in text
 
 
+def _with_residue(run: Run, residue: np.ndarray) -> Run:
+    """The run plus a conv bias's momentum buffer in front of BatchNorm: rounding residue only."""
+    tensors = dict(run.tensors, **{"conv.bias.momentum_buffer": _record("conv.bias.momentum_buffer", "optimizer",
+                                                                        residue)})
+    return Run(metrics=run.metrics, tensors=tensors, meta=run.meta)
+
+
+def test_an_entry_of_pure_rounding_residue_still_reads_as_drift():
+    # The residue moves by 100 % of itself (4e-8 against 4e-8) but by 4e-8 of the weights' scale.
+    golden = _with_residue(_run(0.0, "GenuineIntel"), np.array([4e-8, -3e-8, 1e-8]))
+    other = _with_residue(_run(5e-5, "AuthenticAMD"), np.array([-1e-8, 2e-8, 5e-8]))
+    cmp = compare(golden, other, Policy())
+    assert cmp.failed and drift(cmp) is not None and drift(cmp) < 1e-4
+    # a small entry that really moved (by 1e-2 of the largest entry's scale) is no drift
+    moved = _with_residue(_run(5e-5, "AuthenticAMD"), np.array([4e-8, -3e-8, 0.03]))
+    assert drift(compare(golden, moved, Policy())) is None
+
+
 def test_a_real_change_on_another_cpu_is_reported_as_a_change():
     moved = compare(_run(0.0, "GenuineIntel"), _run(5e-5, "AuthenticAMD", momentum=0.91), Policy())
     assert drift(moved) is None  # a hyperparameter moved: not drift, whatever else changed

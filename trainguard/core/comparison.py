@@ -15,7 +15,7 @@ import numpy as np
 from .attribution import TraceDiff, compare_traces
 from .meta import GoldenMeta
 from .records import MetricSeries, Run, TensorRecord
-from .tolerance import Policy, Tolerance, bitwise_equal, judge, within
+from .tolerance import Policy, Tolerance, bitwise_equal, is_exact_dtype, judge, within
 from .verdicts import CHANGED, CLOSE, IDENTICAL, worst
 
 
@@ -54,6 +54,7 @@ class TensorDiff:
     sketch_distance: float | None = None  # estimated L2 distance, when only sketches were stored
     sketch_allowed: float | None = None
     scale: float = math.nan  # largest finite |golden| among the compared numbers: max_abs / scale is scale-free
+    judged_by: str = ""  # when not the policy's pair: "float16's default rtol=..., atol=..." or "exact (int64)"
 
 
 @dataclass
@@ -151,6 +152,10 @@ def compare_tensor(name: str, golden: TensorRecord | None, new: TensorRecord | N
     j = judge(golden, new, policy.default, exact=policy.exact)
     diff = TensorDiff(name, golden.kind, j.verdict, j.reasons, basis=j.basis, numel=golden.numel,
                       sketch_distance=j.sketch_distance, sketch_allowed=j.sketch_allowed)
+    if not policy.exact and is_exact_dtype(golden.dtype):
+        diff.judged_by = f"exact ({golden.dtype}: integers have no rounding)"
+    elif not policy.exact and policy.default.for_dtype(golden.dtype) != policy.default:
+        diff.judged_by = f"{golden.dtype}'s default {policy.default.for_dtype(golden.dtype).describe()}"
     if j.golden is None or j.new is None:  # bits or structure decided
         return diff
     g, n = j.golden, j.new

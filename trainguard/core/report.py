@@ -126,6 +126,8 @@ def describe_comparison(cmp: Comparison) -> str:
         sizes = [short(t.max_abs), short(t.max_rel)] if t.basis else ["-", "-"]
         if t.sketch_distance is not None:
             reasons.append(f"est. L2 distance {short(t.sketch_distance)} (allowed {short(t.sketch_allowed or 0.0)})")
+        if t.judged_by:
+            reasons.append(f"judged by {t.judged_by}")
         tensor_rows.append([t.name, t.kind, t.verdict, ", ".join(reasons), *sizes, off, t.basis or "-"])
     if tensor_rows:
         out.append("")
@@ -172,14 +174,18 @@ def drift(cmp: Comparison) -> float | None:
             return None
         scale = abs(m.golden) or 1.0
         largest = max(largest, m.max_abs / scale, m.rel_diff)
-    for t in cmp.tensors:
-        if t.verdict == IDENTICAL:
-            continue
+    moved = [t for t in cmp.tensors if t.verdict != IDENTICAL]
+    # An entry that is itself rounding residue (a bias's gradient in front of a normalisation layer:
+    # zero in exact arithmetic) moves by 100 % of its own size; it is measured against a floor of
+    # DRIFT_SIZE times the largest entry that moved instead.
+    floor = DRIFT_SIZE * max((t.scale for t in moved if math.isfinite(t.scale)), default=0.0)
+    for t in moved:
         if t.kind == "hyperparameter" or t.golden_value is not None or any(r != "checksum" for r in t.reasons):
             return None
-        if not (math.isfinite(t.max_abs) and math.isfinite(t.scale)) or t.scale == 0:
+        scale = max(t.scale, floor) if math.isfinite(t.scale) else math.nan
+        if not (math.isfinite(t.max_abs) and math.isfinite(scale)) or scale == 0:
             return None
-        largest = max(largest, t.max_abs / t.scale)
+        largest = max(largest, t.max_abs / scale)
     return largest if largest <= DRIFT_SIZE else None
 
 

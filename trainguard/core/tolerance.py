@@ -26,6 +26,39 @@ DEFAULT_RTOL = 1e-5
 DEFAULT_ATOL = 1e-8
 
 
+#: IEEE 754 machine epsilon 2^-(p-1) of each floating dtype, p its significand precision in bits
+#: (IEEE 754-2008, Table 3.5: binary16 p=11, binary32 p=24, binary64 p=53; bfloat16 keeps
+#: binary32's exponent with p=8; the float8 formats of "FP8 Formats for Deep Learning",
+#: Micikevicius et al. 2022: E4M3 p=4, E5M2 p=3).
+EPSILON: dict[str, float] = {
+    "float64": 2.0**-52, "float32": 2.0**-23, "float16": 2.0**-10, "bfloat16": 2.0**-7,
+    "float8_e4m3fn": 2.0**-3, "float8_e4m3fnuz": 2.0**-3, "float8_e5m2": 2.0**-2, "float8_e5m2fnuz": 2.0**-2,
+}
+#: Where the default pair (1e-5, 1e-8) is in force, state and trace entries of these dtypes take
+#: these instead. 1e-5 is about 84 float32 epsilons; for a format whose epsilon is above 1e-5,
+#: one rounding step already exceeds it, so a value stored in half precision that lands one ulp
+#: the other side of a rounding boundary (after float32 accumulation, the usual case) would fail.
+#: Their rtol is 2 epsilons (one ulp either way); float16's atol is 2 ulps of its smallest
+#: subnormal (2^-24), below which it cannot resolve anything. For comparison, torch.testing's
+#: documented defaults: float16 rtol 1e-3, bfloat16 rtol 1.6e-2 (about 2 epsilons), both atol 1e-5.
+LOW_PRECISION_DEFAULTS: dict[str, tuple[float, float]] = {
+    "float16": (2 * EPSILON["float16"], 2.0**-23),
+    "bfloat16": (2 * EPSILON["bfloat16"], 1e-8),
+    "float8_e4m3fn": (2 * EPSILON["float8_e4m3fn"], 2.0**-8),
+    "float8_e4m3fnuz": (2 * EPSILON["float8_e4m3fnuz"], 2.0**-8),
+    "float8_e5m2": (min(2 * EPSILON["float8_e5m2"], MAX_RTOL), 2.0**-15),
+    "float8_e5m2fnuz": (min(2 * EPSILON["float8_e5m2fnuz"], MAX_RTOL), 2.0**-15),
+}
+#: Integer and boolean entries (step counts, indices, masks) are compared exactly: no rounding
+#: produces a difference in them, so any difference is a change.
+EXACT_KINDS = ("int", "uint", "bool")
+
+
+def is_exact_dtype(dtype: str) -> bool:
+    """Integers and booleans: compared bit for bit whatever the tolerance."""
+    return dtype.startswith(EXACT_KINDS)
+
+
 @dataclass(frozen=True)
 class Tolerance:
     """One pair of tolerances for the rule |new - golden| <= atol + rtol * |golden|."""
@@ -36,6 +69,21 @@ class Tolerance:
     def describe(self) -> str:
         """As reports print it: `rtol=1e-05, atol=1e-08`."""
         return f"rtol={self.rtol:g}, atol={self.atol:g}"
+
+    def for_dtype(self, dtype: str) -> Tolerance:
+        """The pair an entry of `dtype` is judged by: a low-precision dtype's own default replaces
+        each part that is the float32 default (README, "Tolerances per dtype").
+
+        >>> Tolerance().for_dtype("float16")
+        Tolerance(rtol=0.001953125, atol=1.1920928955078125e-07)
+        >>> Tolerance(1e-3, 1e-8).for_dtype("bfloat16")
+        Tolerance(rtol=0.001, atol=1e-08)
+        """
+        low = LOW_PRECISION_DEFAULTS.get(dtype)
+        if low is None:
+            return self
+        return Tolerance(low[0] if self.rtol == DEFAULT_RTOL else self.rtol,
+                         low[1] if self.atol == DEFAULT_ATOL else self.atol)
 
 
 #: Where a tolerance in force came from, as reports name it.
@@ -180,12 +228,15 @@ class Judgement:
 def judge(golden: Summarized, new: Summarized, tol: Tolerance, exact: bool = False) -> Judgement:
     """Climb the one ladder every state and trace entry is judged by.
 
-    1. dtype or shape differ: changed. 2. same SHA-256: identical. 3. the stored values when
+    The tolerance is the entry's dtype's (`Tolerance.for_dtype`); integers and booleans are
+    compared exactly. 1. dtype or shape differ: changed. 2. same SHA-256: identical. 3. the stored values when
     both sides kept them, else the statistics (min, max, mean, L2 norm, non-finite count),
     each under the elementwise rule (bits only with `exact`); where both kept a count-sketch,
     also the estimated L2 distance against `norm_allowed`. Any number outside: changed.
     """
     reasons = []
+    tol = tol.for_dtype(golden.dtype)
+    exact = exact or is_exact_dtype(golden.dtype)
     if golden.dtype != new.dtype:
         reasons.append(f"dtype {golden.dtype} -> {new.dtype}")
     if golden.shape != new.shape:

@@ -254,10 +254,10 @@ def read_folders(nodeid: str, folders: Sequence[str | os.PathLike[str]], seed: A
         first_fp = first_fp if i else fp
         cpu = fp.get("cpu") if isinstance(fp.get("cpu"), dict) else {}
         where = str(cpu.get("model_name") or cpu.get("vendor") or "machine not recorded")
-        label = f"from {root.name or given}"
+        label = root.name or str(given)
         if any(r.spec.label == label for r in out):
-            label = f"from {given}"
-        out.append(RecordedRun(RunSpec(label, Setting("from", f"{given} ({where})")), run, folder))
+            label = str(given)
+        out.append(RecordedRun(RunSpec(label, Setting("from", f"read from {given}, recorded on {where}")), run, folder))
     return out
 
 
