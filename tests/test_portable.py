@@ -126,3 +126,22 @@ def test_a_machine_that_cannot_run_the_baseline_is_named_and_its_goldens_marked(
     pinned = {dispatch.FINGERPRINT_KEY: dispatch.record({}, "DEFAULT")}
     assert dispatch.mismatch(pinned, marked)  # a portable golden never silently matches an unpinned run
     assert dispatch.mismatch(marked, {}) == ""  # both ran unpinned: compared as usual
+
+
+def test_unknown_dispatch_values_are_named():
+    # Values from the libraries' own documentation pass (oneDNN "CPU Dispatcher Control", oneMKL
+    # "Specifying Code Branches", ATen's DispatchStub); anything else is named.
+    known = {"ATEN_CPU_CAPABILITY": "avx2", "ONEDNN_MAX_CPU_ISA": "AVX512_CORE_AMX", "DNNL_MAX_CPU_ISA": "SSE41",
+             "MKL_CBWR": "BRANCH=AVX2,STRICT", "MKL_ENABLE_INSTRUCTIONS": "SSE4_2"}
+    assert dispatch.unknown_settings(known) == []
+    assert dispatch.unknown_settings({"MKL_CBWR": "COMPATIBLE", "ATEN_CPU_CAPABILITY": "avx9000",
+                                      "ONEDNN_MAX_CPU_ISA": "SSE4"}) == ["ATEN_CPU_CAPABILITY=avx9000",
+                                                                         "ONEDNN_MAX_CPU_ISA=SSE4"]
+
+
+def test_an_unknown_dispatch_value_is_never_a_silent_pass(pytester, monkeypatch):
+    pytester.makepyfile(test_depot=DEPOT)
+    result = _run(pytester, monkeypatch, {"ATEN_CPU_CAPABILITY": "avx9000"}, "--trainguard-bless", "-k", "momentum")
+    assert result.ret == 0
+    assert "kernel dispatch setting(s) ATEN_CPU_CAPABILITY=avx9000 name no code path the library knows" \
+        in result.stdout.str()

@@ -20,6 +20,7 @@ is imported or runs a kernel; `verify` checks the one torch reports.
 from __future__ import annotations
 
 import os
+import re
 import sys
 from typing import Any, Mapping, MutableMapping
 
@@ -62,6 +63,30 @@ def baseline_problem(machine: str | None = None, flags: list[str] | None = None)
     if known and _BASELINE_FLAG not in known:
         return "this CPU lacks SSE4.1, the instruction set portable mode pins oneDNN to"
     return ""
+
+
+#: Values the libraries accept for their dispatch settings. ATen: DispatchStub's parser (an
+#: unknown value is ignored with a warning); oneDNN: its "CPU Dispatcher Control" guide;
+#: oneMKL: its developer guide, "Specifying Code Branches" (MKL_CBWR, "<branch>[,STRICT]" or
+#: "BRANCH=<branch>[,STRICT]"); MKL_ENABLE_INSTRUCTIONS' names recalled from oneMKL's
+#: "Instruction Set Specific Dispatching" page, from memory.
+_KNOWN_VALUES: dict[str, re.Pattern[str]] = {
+    "ATEN_CPU_CAPABILITY": re.compile(r"default|avx|avx2|avx512|avx512_vnni|avx512_bf16|amx|vsx|zvector|sve\d*"),
+    "ONEDNN_MAX_CPU_ISA": re.compile(r"(?i)default|all|sse41|avx|avx2|avx2_vnni|avx2_vnni_2|avx512_core(_vnni|_bf16|"
+                                     r"_fp16|_amx|_amx_fp16)?|avx10_\d+_512(_amx(_fp16|_2)?)?"),
+    "MKL_CBWR": re.compile(r"(?i)(branch=)?(auto|compatible|sse2|sse3|ssse3|sse4_1|sse4_2|avx|avx2|avx512(_e\d)?|"
+                           r"avx512_mic(_e1)?|avx10)(,strict)?"),
+    "MKL_ENABLE_INSTRUCTIONS": re.compile(r"(?i)sse4_2|avx|avx2(_e1)?|avx512(_e\d)?|avx512_mic(_e1)?|avx10(_\d+)?"),
+}
+_KNOWN_VALUES["DNNL_MAX_CPU_ISA"] = _KNOWN_VALUES["ONEDNN_MAX_CPU_ISA"]
+
+
+def unknown_settings(environ: Mapping[str, str] | None = None) -> list[str]:
+    """Dispatch variables set to values their library does not know: it ignores them and chooses
+    by CPU, so the run is not dispatched as the variable says (`NAME=value` each)."""
+    env = os.environ if environ is None else environ
+    return [f"{k}={env[k]}" for k, pattern in _KNOWN_VALUES.items()
+            if k in env and not pattern.fullmatch(env[k].strip())]
 
 
 def pin(environ: MutableMapping[str, str] | None = None) -> dict[str, str]:

@@ -184,32 +184,51 @@ def run_once(nodeid: str, spec: RunSpec, scratch: Path, cwd: Path) -> RecordedRu
     return RecordedRun(spec, run, found[0], seconds)
 
 
-def run_all(nodeid: str, runs: int, scratch: Path, cwd: Path, jobs: int,
-            progress: Callable[[str], None] = lambda line: None,
-            after_first: Callable[[RecordedRun], None] = lambda first: None,
-            power_only: bool = False) -> tuple[list[RecordedRun], list[str]]:
-    """The first baseline run alone (it tells the test's real node id, thread count and deterministic
-    setting, and `after_first` may refuse to go on), then the rest, `jobs` at a time. With
-    `power_only`, only the planted changes follow it (calibrate --from reads the noise runs)."""
-    from ..core.dispatch import baseline_problem
-
-    hash_seed = base_hash_seed()
-    first = run_once(nodeid, RunSpec("baseline 1", baseline_setting(hash_seed)), scratch, cwd)
-    progress(f"  done: baseline 1 ({first.seconds:.1f} s)")
-    after_first(first)
-    if power_only:
-        specs, notes = [RunSpec(p.key, p) for p in power_settings(hash_seed)], []
-    else:
-        specs, notes = plan(first.run.meta, runs, hash_seed, os.cpu_count(), x86=not baseline_problem())
-
+def run_specs(nodeid: str, specs: Sequence[RunSpec], scratch: Path, cwd: Path, jobs: int,
+              progress: Callable[[str], None] = lambda line: None) -> list[RecordedRun]:
+    """Run `specs`, `jobs` at a time, each in a fresh process; in the order given."""
     def one(spec: RunSpec) -> RecordedRun:
         rec = run_once(nodeid, spec, scratch, cwd)
         progress(f"  done: {spec.label} ({rec.seconds:.1f} s)")
         return rec
 
     with ThreadPoolExecutor(max_workers=max(1, jobs)) as pool:
-        rest = list(pool.map(one, specs))
-    return [first, *rest], notes
+        return list(pool.map(one, specs))
+
+
+def run_all(nodeid: str, runs: int, scratch: Path, cwd: Path, jobs: int,
+            progress: Callable[[str], None] = lambda line: None,
+            after_first: Callable[[RecordedRun], None] = lambda first: None,
+            baseline_only: bool = False) -> tuple[list[RecordedRun], list[str]]:
+    """The first baseline run alone (it tells the test's real node id, thread count and deterministic
+    setting, and `after_first` may refuse to go on), then the noise variations, `jobs` at a time.
+    With `baseline_only`, nothing follows it (calibrate --from reads the noise runs). The power
+    checks run later (`run_specs(power_specs())`), once the noise says they are worth running."""
+    from ..core.dispatch import baseline_problem
+
+    hash_seed = base_hash_seed()
+    first = run_once(nodeid, RunSpec("baseline 1", baseline_setting(hash_seed)), scratch, cwd)
+    progress(f"  done: baseline 1 ({first.seconds:.1f} s)")
+    after_first(first)
+    if baseline_only:
+        return [first], []
+    specs, notes = plan(first.run.meta, runs, hash_seed, os.cpu_count(), x86=not baseline_problem(), power=False)
+    return [first, *run_specs(nodeid, specs, scratch, cwd, jobs, progress)], notes
+
+
+def power_specs() -> list[RunSpec]:
+    """One run per planted change, with the baseline's hash seed."""
+    return [RunSpec(p.key, p) for p in power_settings(base_hash_seed())]
+
+
+def skip_power(cal: Calibration) -> str:
+    """Why the power checks are not worth running for this noise ('' when they are): there is no
+    proposal to judge (differences no tolerance covers), or it is over the caps and cannot be stored."""
+    if cal.problems:
+        return "no tolerance covers the differences above, so there is nothing to judge them under"
+    if cal.proposal is not None and _over_caps(cal):
+        return "the proposal is looser than a calibrated tolerance may be, so it cannot be stored anyway"
+    return ""
 
 
 def default_jobs(cpu_count: int | None = None) -> int:
@@ -329,21 +348,30 @@ def calibrate(nodeid: str, runs: int = DEFAULT_RUNS, safety: float = DEFAULT_SAF
 
     progress(f"trainguard calibrate: running {nodeid} (baseline first, then {jobs} at a time)")
     started = time.perf_counter()
-    power_only = bool(sources)
+
+    def measure(scratch: Path) -> tuple[list[RecordedRun], Calibration]:
+        recorded, notes = run_all(nodeid, runs, scratch, cwd, jobs, progress, refuse_without_golden,
+                                  baseline_only=bool(sources))
+        local = recorded[0]
+        noise = recorded
+        if sources:
+            real = str(local.run.meta.get("nodeid") or nodeid)
+            noise = read_folders(real, sources, local.run.meta.get("seed"))
+        cal = analyse(nodeid, noise, safety, notes, power_reference=local)
+        why = skip_power(cal)
+        if why:
+            cal.notes.append(f"power checks skipped: {why}")
+            return recorded, cal
+        planted = run_specs(nodeid, power_specs(), scratch, cwd, jobs, progress)
+        return recorded, analyse(nodeid, [*noise, *planted], safety, notes, power_reference=local)
+
     if keep is not None:
         keep.mkdir(parents=True, exist_ok=True)
-        recorded, notes = run_all(nodeid, runs, keep, cwd, jobs, progress, refuse_without_golden, power_only)
+        recorded, cal = measure(keep)
     else:
         with tempfile.TemporaryDirectory(prefix="trainguard-calibrate-") as tmp:
-            recorded, notes = run_all(nodeid, runs, Path(tmp), cwd, jobs, progress, refuse_without_golden, power_only)
-    if sources:
-        local = recorded[0]
-        real = str(local.run.meta.get("nodeid") or nodeid)
-        folders = read_folders(real, sources, local.run.meta.get("seed"))
-        cal = analyse(nodeid, [*folders, *recorded[1:]], safety, notes, power_reference=local)
-        cal.from_folders = True
-    else:
-        cal = analyse(nodeid, recorded, safety, notes)
+            recorded, cal = measure(Path(tmp))
+    cal.from_folders = bool(sources)
     cal.seconds = time.perf_counter() - started
     cal.jobs = jobs
     out(format_report(cal))

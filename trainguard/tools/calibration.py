@@ -31,6 +31,11 @@ from ..core.version import __version__
 DEFAULT_SAFETY = 10.0
 #: Default number of baseline runs (each variation runs `runs - 1` times, at least once).
 DEFAULT_RUNS = 2
+#: Values smaller than this fraction of their entry's RMS have their spread measured against
+#: that fraction of the RMS instead of their own size. A tenth keeps values of the same order
+#: (a loss falling from 0.7 to 0.1) judged by their own size, while an element a thousand times
+#: smaller than its neighbours cannot inflate rtol. Chosen here, not taken from a source.
+SCALE_FLOOR = 0.1
 #: Largest relative spread (against max(|value|, its entry's RMS)) that rtol takes. Rounding
 #: noise in a value that means something stays orders of magnitude below it (float32 rounds at
 #: 6e-8 per operation; thread and dispatch noise measured here after a few dozen steps: 1e-7 to
@@ -98,9 +103,9 @@ class Spread:
     def scale(self) -> float:
         """The entry's own magnitude: the root mean square of its finite reference values.
 
-        Relative spreads are taken against max(|value|, scale), so that an element near zero
-        (a momentum buffer entry of 1e-9 beside others of 1e-3) cannot make rtol huge: its
-        spread counts against the size of its entry, and atol takes what rtol leaves."""
+        Relative spreads are taken against max(|value|, SCALE_FLOOR x scale), so that an element
+        near zero (a momentum buffer entry of 1e-9 beside others of 1e-3) cannot make rtol huge:
+        its spread counts against the size of its entry, and atol takes what rtol leaves."""
         finite = self.reference[np.isfinite(self.reference)]
         return float(np.sqrt(np.mean(np.square(finite)))) if finite.size else 0.0
 
@@ -114,8 +119,8 @@ class Spread:
         return np.where(self.spread == 0, 0.0, rel)
 
     def scaled_rel(self) -> np.ndarray:
-        """spread / max(|reference|, scale): the relative spread, with the entry's RMS as the floor."""
-        floor = np.maximum(np.abs(self.reference), self.scale)
+        """spread / max(|reference|, SCALE_FLOOR x scale): the relative spread, floored by the entry's RMS."""
+        floor = np.maximum(np.abs(self.reference), SCALE_FLOOR * self.scale)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             rel = self.spread / floor
         return np.where((self.spread > 0) & (floor > 0) & np.isfinite(rel), rel, 0.0)
@@ -297,10 +302,9 @@ def round_up(x: float) -> float:
 def propose(spreads: Sequence[Spread], safety: float, current: Tolerance) -> Proposal:
     """The tolerance rule (README, "Calibrating tolerances"):
 
-    rtol = safety x the largest relative spread, each spread taken against max(|value|, the
-    RMS of its metric or entry); atol = safety x the largest part of a spread that this rtol
-    (before the safety factor) leaves uncovered, which only values smaller than their entry's
-    RMS can have. Each is rounded up to one significant digit; a part with no spread keeps its
+    rtol = safety x the largest relative spread, each spread taken against max(|value|, a tenth
+    of the RMS of its metric or entry), spreads above NOISE_REL of that left out; atol = safety
+    x the largest part of a spread that this rtol (before the safety factor) leaves uncovered. Each is rounded up to one significant digit; a part with no spread keeps its
     current value. Then every observed difference d at reference value g satisfies
     d <= atol + rtol * |g|, and a near-zero element cannot inflate rtol: its spread is measured
     against the size of its entry.
@@ -689,9 +693,9 @@ def format_report(cal: Calibration) -> str:
     assert p is not None
     out.append(f"proposed tolerance, safety factor {cal.safety:g} (a common rule of thumb, not a standard): "
                f"rtol = {cal.safety:g} x the largest relative spread, each taken against the larger of the value "
-               f"and the RMS of its metric or entry; atol = {cal.safety:g} x what that leaves uncovered (values "
-               f"smaller than their entry's RMS); rounded up to one significant digit. The overall pair comes from "
-               f"the state entries; each metric that moved gets its own:")
+               f"and {SCALE_FLOOR:g} x the RMS of its metric or entry (spreads above {NOISE_REL:g} of that are "
+               f"left to atol); atol = {cal.safety:g} x what that leaves uncovered; rounded up to one significant "
+               f"digit. The overall pair comes from the state entries; each metric that moved gets its own:")
     out.append(f"  rtol={_num(p.rtol)}  " + ("(current value kept: no state entry moved)" if p.kept_rtol
                                             else f"(observed {_e(p.raw_rtol)} in {p.rtol_where})"))
     out.append(f"  atol={_num(p.atol)}  " + ("(current value kept: nothing left for atol)" if p.kept_atol

@@ -80,6 +80,14 @@ def pytest_configure(config: pytest.Config) -> None:
     check_workflow_options(config)
     manager = config.pluginmanager
     guard = GuardPlugin(config)
+    from ...core.dispatch import unknown_settings
+
+    unknown = unknown_settings()
+    if unknown:  # never a silent pass: the libraries ignore these and dispatch by CPU
+        config.issue_config_time_warning(pytest.PytestWarning(
+            f"trainguard: kernel dispatch setting(s) {', '.join(unknown)} name no code path the library knows; it "
+            "ignores them and dispatches by CPU, so this run is not dispatched as the variable says (the "
+            "fingerprint records the value as set). Fix or unset them"), stacklevel=2)
     if config.getoption("--trainguard-portable", False) or config.getini("trainguard_portable"):
         from ...core import dispatch
 
