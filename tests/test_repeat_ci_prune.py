@@ -447,3 +447,57 @@ def test_prune_lists_and_deletes_goldens_no_test_uses(pytester: pytest.Pytester,
     # trainguard's own options after the pytest arguments would go to pytest: said plainly
     assert main(["prune", "test_pantry.py", "--delete"]) == 2
     assert "--delete came after the pytest arguments" in capsys.readouterr().err
+
+
+# -- repeats of watched tests: a tram depot's braking model ------------------------------------
+
+DEPOT = '''
+import os
+
+import pytest
+import torch
+
+
+def brake(trajectory, noisy_sensor=False):
+    """Fit braking distances of trams to speed and load; `noisy_sensor` reads the OS entropy pool."""
+    model = torch.nn.Linear(2, 1)
+    opt = torch.optim.SGD(model.parameters(), lr=0.05)
+    trajectory.watch(model, opt)
+    for step in range(3):
+        x = torch.rand(16, 2)
+        if noisy_sensor and step == 1:
+            x = x + int.from_bytes(os.urandom(2), "little") * 1e-9
+        opt.zero_grad()
+        loss = (model(x) - x.sum(dim=1, keepdim=True)).pow(2).mean()
+        loss.backward()
+        opt.step()
+        trajectory.log(step, loss=loss.item())
+    trajectory.state(model, optimizer=opt)
+
+
+@pytest.mark.trainguard(seed=3)
+def test_brake_steady(trajectory):
+    brake(trajectory)
+
+
+@pytest.mark.trainguard(seed=3)
+def test_brake_noisy_sensor(trajectory):
+    brake(trajectory, noisy_sensor=True)
+'''
+
+
+def test_repeat_compares_the_traces_of_watched_tests(pytester: pytest.Pytester) -> None:
+    # Used to crash ("a trace is already running in this process"): the first run's trace kept its hooks.
+    pytester.makeini("[pytest]\n")
+    pytester.makepyfile(test_depot=DEPOT)
+    result = run(pytester, "--trainguard-bless", "--trainguard-repeat", "2")
+    assert outcomes(result) == {"test_depot.py::test_brake_steady": "PASSED",
+                                "test_depot.py::test_brake_noisy_sensor": "FAILED"}
+    assert "Traceback" not in result.stdout.str() and "already running" not in result.stdout.str()
+    noisy = sections(result)["test_brake_noisy_sensor"]
+    assert "test_depot.py::test_brake_noisy_sensor is nondeterministic: 2 runs" in noisy
+    assert "trace: first bitwise difference at step 1, stage data" in noisy  # the sensor, at step 1
+    # the steady test's golden carries the first run's whole trace, and a repeated check matches it
+    assert (pytester.path / "golden" / "test_depot.py" / "test_brake_steady" / "trace.parquet").is_file()
+    result = run(pytester, "--trainguard-repeat", "2", "-k", "steady")
+    result.stdout.fnmatch_lines(["guarded tests checked: 1 (1 identical)"])

@@ -61,6 +61,7 @@ class _Repeats:
             fail(f"{guard_nodeid(self.item)}: --trainguard-repeat gives each run a fresh 'trajectory' "
                              "argument, but this test gets the trajectory through another fixture; add a 'trajectory' "
                              "argument to the test and pass it on, or run it without --trainguard-repeat")
+        first.close()  # the first run's trace is complete: its hooks go, its entries stay for the verdict
         try:
             for _ in range(self.count - 1):
                 self.start.restore()
