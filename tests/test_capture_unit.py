@@ -8,6 +8,7 @@ torch, pyarrow, hashlib), never read back from the code under test.
 
 from __future__ import annotations
 
+import hashlib
 import math
 from pathlib import Path
 
@@ -583,3 +584,24 @@ def test_rebless_keeps_calibrated_tolerances(tmp_path):
     back = read_run(folder)
     assert back.metrics["loss"].values.tolist() == [9.0, 8.0, 7.0]
     assert back.meta["calibrated"]["rtol"] == 2e-4
+
+
+@pytest.mark.parametrize("value, dtype", [(np.float32(1.5), "float32"), (np.float16(0.25), "float16"),
+                                          (np.int32(7), "int32"), (np.bool_(True), "bool"), (1.5, "float64"),
+                                          (7, "int64"), (True, "bool")])
+def test_scalars_keep_their_dtype(value, dtype):
+    # NumPy's own dtype of the scalar (np.asarray(value).dtype) is the reference; Python numbers
+    # become NumPy's defaults for them (float64, int64, bool).
+    t = Trajectory()
+    t.state(oven_temp=value)
+    rec = t.to_run().tensors["oven_temp"]
+    assert rec.dtype == dtype == str(np.asarray(value).dtype)
+    assert rec.sha256 == hashlib.sha256(np.asarray(value).tobytes()).hexdigest()  # FIPS 180-4 via hashlib
+
+
+def test_a_scalar_dtype_change_is_a_change_even_for_a_representable_value():
+    a, b = Trajectory(), Trajectory()
+    a.state(oven_temp=np.float32(1.5))
+    b.state(oven_temp=np.float64(1.5))  # the same number, exactly representable in both
+    cmp = compare(a.to_run(), b.to_run(), Policy())
+    assert cmp.outcome == CHANGED and cmp.tensors[0].reasons == ["dtype float32 -> float64"]

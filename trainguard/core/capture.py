@@ -205,8 +205,12 @@ class Trajectory:
                     yield from _state_entries(f"{prefix}{pname}.{key}", value)
 
     def _describe(self, name: str, kind: str, value: Any) -> TensorRecord:
-        if isinstance(value, (bool, np.bool_)):
-            array: Any = np.asarray(value, dtype=np.bool_)
+        if isinstance(value, np.generic):  # a NumPy scalar keeps its dtype: float32 -> float64 is a change
+            array: Any = np.asarray(value)
+            if array.dtype == object or array.dtype.kind not in "biufc":
+                raise UsageError(f"trajectory.state({name}=...): scalar dtype {array.dtype} is not numeric")
+        elif isinstance(value, bool):
+            array = np.asarray(value, dtype=np.bool_)
         elif isinstance(value, numbers.Integral):
             array = np.asarray(int(value), dtype=np.int64)
         elif isinstance(value, numbers.Real):
