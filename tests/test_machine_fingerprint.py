@@ -136,3 +136,43 @@ def test_a_library_only_one_run_imported_is_not_reported_as_a_change():
     assert environment_changes(golden, new) == []
     assert environment_changes({"packages": {"torch": "2.13.0"}}, {"packages": {}}) == [
         "packages.torch: 2.13.0 -> (absent)"]  # the always-recorded ones still count
+
+
+SWITCHYARD = '''
+import os
+
+import pytest
+import torch
+
+
+@pytest.mark.trainguard(seed=1)
+def test_switchyard(trajectory):
+    """An invented tram switchyard: the test body sets its own thread count."""
+    torch.set_num_threads(int(os.environ["YARD_THREADS"]))
+    w = torch.ones(3, requires_grad=True)
+    opt = torch.optim.SGD([w], lr=0.1)
+    for step in range(2):
+        opt.zero_grad()
+        (w * torch.arange(3.0)).pow(2).sum().backward()
+        opt.step()
+        trajectory.log(step, loss=w.sum().item())
+    trajectory.state(w=w)
+'''
+
+
+def test_a_thread_count_set_inside_the_test_body_is_recorded(pytester, monkeypatch):
+    from trainguard.core.store import read_run
+
+    pytester.makepyfile(test_yard=SWITCHYARD)
+    monkeypatch.setenv("YARD_THREADS", "3")
+    result = pytester.runpytest_subprocess("-p", "no:xdist", "-p", "no:cacheprovider", "--trainguard-bless",
+                                           "--trainguard-threads=2")
+    assert result.ret == 0
+    fp = read_run(pytester.path / "golden" / "test_yard.py" / "test_switchyard").meta["fingerprint"]
+    assert fp["threads"]["intra_op"] == 2 and fp["threads"]["intra_op_set_in_body"] == 3
+    monkeypatch.setenv("YARD_THREADS", "1")
+    result = pytester.runpytest_subprocess("-p", "no:xdist", "-p", "no:cacheprovider", "--trainguard-bless",
+                                           "--trainguard-threads=2", "--trainguard-golden-dir=other")
+    assert result.ret == 0
+    other = read_run(pytester.path / "other" / "test_yard.py" / "test_switchyard").meta["fingerprint"]
+    assert "threads.intra_op_set_in_body: 3 -> 1" in environment_changes(fp, other)

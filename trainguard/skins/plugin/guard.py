@@ -114,6 +114,7 @@ class GuardPlugin:
 
         nodeid = guard_nodeid(item)
         pending.trajectory.close()
+        record_body_threads(pending.fingerprint)
         option = self.config.getoption
         results_dir = option("--trainguard-results")
         report_dir = option("--trainguard-report")
@@ -153,3 +154,17 @@ class GuardPlugin:
             terminalreporter.write_line(safe_output(line))
         if self.report_path is not None:
             terminalreporter.write_line(f"report: {self.report_path}")
+
+
+def record_body_threads(fingerprint: dict[str, Any]) -> None:
+    """Record a thread count the test body set itself (`torch.set_num_threads` inside the test):
+    the fingerprint is taken before the body runs, so without this the change would not show."""
+    import sys
+
+    torch = sys.modules.get("torch")
+    threads = fingerprint.get("threads")
+    if torch is None or not isinstance(threads, dict):
+        return
+    now = torch.get_num_threads()
+    if now != threads.get("intra_op"):
+        threads["intra_op_set_in_body"] = now
