@@ -557,3 +557,36 @@ def test_bad_input_gets_clear_messages(pytester: pytest.Pytester) -> None:
         assert "trainguard/capture.py" not in text and "trainguard/settings.py" not in text, (name, text)
     # nothing was blessed or compared, so no golden appeared
     assert not (pytester.path / "golden").exists()
+
+
+KILN = '''
+import pytest
+import torch
+
+
+@pytest.mark.trainguard(seed=4)
+def test_kiln_overheats(trajectory):
+    """An invented pottery kiln whose temperature model overflows from step 1."""
+    w = torch.tensor([1.0, 2.0])
+    for step in range(4):
+        loss = (w * torch.tensor(1e30) ** step).pow(2).sum()  # float32: 1e60 overflows to +Inf at step 1
+        trajectory.log(step, loss=loss.item() if step < 2 else float("nan"))
+    trajectory.state(w=w.detach(), glaze=torch.tensor([float("inf"), 1.0, float("nan")]))
+'''
+
+
+def test_blessing_non_finite_values_warns_and_is_stored(pytester: pytest.Pytester) -> None:
+    from trainguard.core.store import read_run
+
+    pytester.makepyfile(test_kiln=KILN)
+    result = run(pytester, "--trainguard-bless")
+    assert result.ret == 0
+    result.stdout.fnmatch_lines([
+        "goldens blessed: 1 (1 new)",
+        "  new       test_kiln.py::test_kiln_overheats -> golden/test_kiln.py/test_kiln_overheats",
+        "    warning: blessed with non-finite values: loss (+Inf from step 1), glaze (2 values)",
+    ])
+    meta = read_run(pytester.path / "golden" / "test_kiln.py" / "test_kiln_overheats").meta
+    assert meta["nonfinite"] == ("loss (+Inf from step 1)", "glaze (2 values)")
+    # the same non-finite values match themselves on a check (NaN with NaN, +Inf with +Inf)
+    run(pytester).stdout.fnmatch_lines(["guarded tests checked: 1 (1 identical)"])

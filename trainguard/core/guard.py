@@ -18,9 +18,9 @@ from . import dispatch, planting
 from .comparison import Comparison, compare
 from .errors import GoldenMissingError, TrainguardError, UsageError
 from .fixes import FixCommands
-from .meta import GoldenMeta, utc_stamp
+from .meta import MAX_NAMES, GoldenMeta, utc_stamp
 from .outcome import GuardResult
-from .records import Run
+from .records import Run, nonfinite_parts
 from .report import first_metric_difference, first_tensor_difference, render_result
 from .report_files import row_for
 from .settings import GuardSettings, calibrated_policy
@@ -206,10 +206,11 @@ def settle(request: GuardRequest) -> tuple[GuardResult, dict[str, Any]]:
     if unknown:
         raise UsageError(f"{nodeid}: the marker's metrics= names {', '.join(map(repr, unknown))}, which the test "
                          f"never logged (logged: {', '.join(request.run.metrics) or 'none'}); fix the name in the marker")
+    nonfinite = nonfinite_parts(request.run) if request.bless else []
     run = replace(request.run, meta=GoldenMeta(
         nodeid=nodeid, seed=settings.seed, deterministic=settings.deterministic,
         tolerances=settings.policy.to_json(), max_values=request.max_values, fingerprint=request.fingerprint,
-        blessed_at=utc_stamp(), reason=request.reason))
+        blessed_at=utc_stamp(), reason=request.reason, nonfinite=tuple(nonfinite[:MAX_NAMES]) or None))
     store = request.golden
     folder = store.folder(nodeid)
     result = None
@@ -217,6 +218,9 @@ def settle(request: GuardRequest) -> tuple[GuardResult, dict[str, Any]]:
         result = check_repeats(nodeid, [run, *request.repeats], folder, base=request.base)
     if result is None and request.bless:
         result = bless(nodeid, run, folder, settings.policy, base=request.base, store=store)
+        if nonfinite:  # passes later only against the same NaNs: a reviewer should know it was blessed
+            result.warning = (f"blessed with non-finite values: {', '.join(nonfinite[:5])}"
+                              + (f" and {len(nonfinite) - 5} more" if len(nonfinite) > 5 else ""))
     elif result is None:
         result = check(nodeid, run, folder, settings.policy, base=request.base,
                        use_calibrated=not settings.marker_tolerance, store=store)

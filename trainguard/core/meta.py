@@ -34,6 +34,8 @@ MAX_CALIBRATED_RTOL = 1e-2
 MAX_CALIBRATED_ATOL = 1e-4
 #: Longest text entry (reason, node id, paths) and most entries in a fingerprint.
 MAX_TEXT = 4096
+#: Most names in a list entry (`nonfinite`).
+MAX_NAMES = 64
 MAX_FINGERPRINT_ENTRIES = 4096
 _STAMP = re.compile(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ\Z")
 _FORMAT_KEY = "format_version"
@@ -155,6 +157,14 @@ def _fingerprint(key: str, value: Any) -> Mapping[str, Any]:
     return value
 
 
+def _names(key: str, value: Any) -> tuple[str, ...]:
+    """A short list of short texts (entry names)."""
+    if not isinstance(value, (list, tuple)) or len(value) > MAX_NAMES or not all(
+            isinstance(v, str) and len(v) <= MAX_TEXT for v in value):
+        raise MetaError(key, value, f"is not a list of at most {MAX_NAMES} names")
+    return tuple(value)
+
+
 def _deterministic(key: str, value: Any) -> bool | str:
     if value not in (True, False, "warn") or isinstance(value, (int, float)) and not isinstance(value, bool):
         raise MetaError(key, value, f"= {value!r}, not true, false or \"warn\"")
@@ -171,7 +181,7 @@ def _stamp(key: str, value: Any) -> str:
 _VALIDATORS: dict[str, Callable[[str, Any], Any]] = {
     "nodeid": _text, "seed": _int_in(0, 2**32 - 1), "deterministic": _deterministic, "tolerances": _tolerances,
     "max_values": _int_in(0, 2**40), "fingerprint": _fingerprint, "blessed_at": _stamp, "reason": _text,
-    "calibrated": _calibrated, "adopted_from": _text,
+    "calibrated": _calibrated, "adopted_from": _text, "nonfinite": _names,
 }
 
 
@@ -204,6 +214,7 @@ class GoldenMeta(Mapping[str, Any]):
     reason: str | None = None
     calibrated: Mapping[str, Any] | None = None  # written by `trainguard calibrate --write`
     adopted_from: str | None = None  # set by `trainguard bless --from`
+    nonfinite: tuple[str, ...] | None = None  # metrics and entries blessed with NaN or Inf in them
     extra: Mapping[str, Any] = field(default_factory=dict)  # always empty: unknown keys are refused
     format_version: int | None = None  # of the file it was read from; never stored in the JSON
 

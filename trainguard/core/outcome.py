@@ -25,6 +25,7 @@ class GuardResult:
     reference: Run | None = None  # the golden it was compared with, when readable
     divergence: str = ""  # one-line "where" for the summary when `comparison` alone does not say it
     error: str = ""  # why the golden is unreadable
+    warning: str = ""  # blesses: what the reviewer should know (non-finite values were blessed)
     # nondeterministic only: first differences, number of runs, first differing run, how many
     # differ, and the runs that agree with run 1
     where: list[str] = field(default_factory=list)

@@ -140,3 +140,21 @@ def _meta_from(value: Mapping[str, Any]) -> GoldenMeta:
     from .meta import GoldenMeta
 
     return value if isinstance(value, GoldenMeta) else GoldenMeta.from_json(value)
+
+
+def nonfinite_parts(run: Run) -> list[str]:
+    """Metrics and entries holding NaN or Inf, each with where: `loss (NaN from step 3)`, `fc.weight (2 values)`.
+
+    A golden blessed with them passes only against the same NaNs; a bless should say so.
+    """
+    out = []
+    for name, series in sorted(run.metrics.items()):
+        bad = np.flatnonzero(~np.isfinite(series.values))
+        if bad.size:
+            value = float(series.values[bad[0]])
+            word = "NaN" if value != value else ("+Inf" if value > 0 else "-Inf")
+            out.append(f"{name} ({word} from step {int(series.steps[bad[0]])})")
+    for name, rec in sorted(run.tensors.items()):
+        if rec.nonfinite:
+            out.append(f"{name} ({rec.nonfinite} value{'s' if rec.nonfinite != 1 else ''})")
+    return out

@@ -59,6 +59,8 @@ def row_for(result: GuardResult, report_dir: Path | None = None) -> dict[str, An
     data = asdict(row)
     data["folder"] = result.folder
     data["plots_unavailable"] = False
+    if result.warning:
+        data["warning"] = untrusted(result.warning)
     if (report_dir is not None and not result.blessing and result.outcome == CHANGED
             and result.reference is not None and result.run is not None):
         try:

@@ -29,4 +29,6 @@ def summary_lines(rows: Iterable[dict[str, Any]]) -> list[str]:
                 lines.append(f"  {r['outcome']:<9} {r['nodeid']} (not blessed: its repeated runs differ)")
             else:
                 lines.append(f"  {r['outcome']:<9} {r['nodeid']} -> {r.get('folder', '')}")
+            if r.get("warning"):
+                lines.append(f"    warning: {r['warning']}")
     return lines
