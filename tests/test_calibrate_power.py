@@ -204,6 +204,20 @@ def test_a_golden_with_a_planted_change_is_never_a_reference(tmp_path):
     assert result.outcome == UNREADABLE and "planted change (lr:0.01)" in result.error
 
 
+def test_a_bless_replaces_a_planted_golden_even_with_the_same_bits(tmp_path):
+    from trainguard.core.guard import bless
+    from trainguard.core.verdicts import BLESSED_CHANGED
+
+    folder = tmp_path / "golden" / "t"
+    run = _noisy_runs()[0].run
+    golden.write_run(folder, Run(metrics=run.metrics, tensors=run.tensors,
+                                 meta=run.meta.with_(fingerprint={"planted": "params:0.0001"})))
+    result = bless("n", Run(metrics=run.metrics, tensors=run.tensors, meta=run.meta.with_(fingerprint={})), folder,
+                   Policy())
+    assert result.outcome == BLESSED_CHANGED
+    assert "planted" not in golden.read_run(folder).meta["fingerprint"]
+
+
 def test_plugin_refuses_a_plant_outside_a_bless(tmp_path):
     (tmp_path / "test_x.py").write_text("def test_x():\n    pass\n")
     proc = run_pytest(tmp_path, "--trainguard-plant=lr:0.01")

@@ -131,6 +131,8 @@ def _same_golden(previous: Run, run: Run, policy: Policy) -> bool:
     keys = ("seed", "tolerances", "deterministic")
     if dispatch.mismatch(previous.meta.get("fingerprint"), run.meta.get("fingerprint")):
         return False  # same bits, but blessed in the other mode: rewrite it so the mode is recorded
+    if planting.golden_problem(previous.meta.get("fingerprint")):
+        return False  # calibrate's scratch (a plant without effect): rewrite it as a real golden
     return all(previous.meta.get(k) == run.meta.get(k) for k in keys)
 
 

@@ -12,7 +12,14 @@ changes on this machine:
 - torch's deterministic mode off (`--trainguard-nondeterministic`): kernels without a
   deterministic implementation (atomic adds, mostly on GPUs) are then allowed;
 - another `PYTHONHASHSEED`: Python salts str hashes per process, so a plain `pytest`
-  run iterates sets of names in an order that changes from run to run.
+  run iterates sets of names in an order that changes from run to run;
+- another CPU's kernel dispatch (x86-64, unpinned runs only): ATen's, oneDNN's and oneMKL's
+  baseline code paths, and oneMKL's all-processor CNR branch.
+
+Then, unless no proposal could be stored, the power checks: one run per planted change
+(core.planting), judged under the proposal; `--write` refuses a proposal that misses the
+1 % learning-rate change. With `--from DIR...` the noise runs are read from CI's result
+folders instead, and only the baseline and the power checks run here.
 
 Everything is measured against the first baseline run. The analysis (`analyse`) and
 the report (`format_report`) are pure functions of the recorded runs; only
