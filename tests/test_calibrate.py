@@ -29,7 +29,7 @@ from trainguard.core.settings import calibrated_policy
 from trainguard.core.tolerance import DEFAULT_ATOL, DEFAULT_RTOL, Policy, Tolerance
 from trainguard.core.verdicts import CHANGED, CLOSE
 from trainguard.skins.cli import main
-from trainguard.tools.calibrate import plan, thread_counts, write_calibration
+from trainguard.tools.calibrate import plan, power_settings, thread_counts, write_calibration
 from trainguard.tools.calibration import RecordedRun, RunSpec, Setting, analyse, round_up
 
 # -- synthetic runs ----------------------------------------------------------------------------
@@ -164,13 +164,16 @@ def test_plan_varies_threads_deterministic_mode_and_hash_seed():
     assert labels == ["baseline 2", "baseline 3", "threads=1 #1", "threads=1 #2", "threads=8 #1", "threads=8 #2",
                       "nondeterministic #1", "nondeterministic #2", "hashseed=1 #1", "hashseed=1 #2",
                       "dispatch=sse4.2 #1", "dispatch=sse4.2 #2", "dispatch=mkl-compatible #1",
-                      "dispatch=mkl-compatible #2", "planted lr:0.001", "planted lr:0.01", "planted params:0.0001"]
+                      "dispatch=mkl-compatible #2"]
+    power = power_settings("0")  # run after the noise, once it says they are worth running
+    assert [p.key for p in power] == ["planted lr:0.001", "planted lr:0.01", "planted params:0.0001"]
     assert dict(specs[9].setting.env) == {"PYTHONHASHSEED": "1"}
     assert dict(specs[10].setting.env) == {"PYTHONHASHSEED": "0", "MKL_ENABLE_INSTRUCTIONS": "SSE4_2",
                                            "ATEN_CPU_CAPABILITY": "default", "ONEDNN_MAX_CPU_ISA": "SSE41"}
     assert dict(specs[12].setting.env)["MKL_CBWR"] == "COMPATIBLE"
-    assert [s.setting.required for s in specs if s.setting.plant] == [False, True, False]
-    assert specs[-2].setting.args == ("--trainguard-plant=lr:0.01",)
+    assert [p.required for p in power] == [False, True, False]
+    assert power[1].args == ("--trainguard-plant=lr:0.01",) and dict(power[1].env) == {"PYTHONHASHSEED": "0"}
+    assert not any(s.setting.plant for s in specs)
     assert "--trainguard-nondeterministic" in specs[6].setting.args and not notes
     assert thread_counts(2, 2) == [1, 4]  # never the baseline's own count
     assert thread_counts(1, 1) == [2, 3]
@@ -182,14 +185,11 @@ def test_plan_leaves_pinned_settings_alone():
     # Portable mode pins threads and dispatch (a contradicting --trainguard-threads is a usage error).
     portable = {"deterministic": True, "fingerprint": {"threads": {"intra_op": 1}, "portable": {"pins": {}}}}
     specs, notes = plan(portable, 2, "0", 8)
-    assert [s.label for s in specs] == ["baseline 2", "nondeterministic", "hashseed=1", "planted lr:0.001",
-                                        "planted lr:0.01", "planted params:0.0001"]
+    assert [s.label for s in specs] == ["baseline 2", "nondeterministic", "hashseed=1"]
     assert "portable mode, which pins both" in notes[0]
     # Off x86-64 the dispatch settings mean nothing: said, not run.
     specs, notes = plan({"fingerprint": {"threads": {"intra_op": 2}}}, 2, "0", 2, x86=False)
     assert not any(s.label.startswith("dispatch") for s in specs) and "x86-64" in notes[-1]
-    specs, _ = plan({"fingerprint": {"threads": {"intra_op": 2}}}, 2, "0", 2, power=False)
-    assert not any(s.setting.plant for s in specs)
 
 
 def test_written_calibration_is_used_by_the_check(tmp_path):

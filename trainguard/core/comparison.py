@@ -154,8 +154,8 @@ def compare_tensor(name: str, golden: TensorRecord | None, new: TensorRecord | N
                       sketch_distance=j.sketch_distance, sketch_allowed=j.sketch_allowed)
     if not policy.exact and is_exact_dtype(golden.dtype):
         diff.judged_by = f"exact ({golden.dtype}: integers have no rounding)"
-    elif not policy.exact and policy.default.for_dtype(golden.dtype) != policy.default:
-        diff.judged_by = f"{golden.dtype}'s default {policy.default.for_dtype(golden.dtype).describe()}"
+    elif not policy.exact and (own := policy.default.for_dtype(golden.dtype)) != policy.default:
+        diff.judged_by = f"{golden.dtype}'s default {own.describe()}"
     if j.golden is None or j.new is None:  # bits or structure decided
         return diff
     g, n = j.golden, j.new

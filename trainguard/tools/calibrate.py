@@ -53,6 +53,7 @@ from .calibration import (
     RecordedRun,
     RunSpec,
     Setting,
+    add_power,
     analyse,
     check_golden,
     format_report,
@@ -113,7 +114,7 @@ def power_settings(hash_seed: str) -> list[Setting]:
 
 
 def plan(baseline_meta: dict[str, Any], runs: int, hash_seed: str, cpu_count: int | None,
-         x86: bool = True, power: bool = True) -> tuple[list[RunSpec], list[str]]:
+         x86: bool = True) -> tuple[list[RunSpec], list[str]]:
     """The runs after the first baseline run, and notes on variations left out."""
     notes: list[str] = []
     base = baseline_setting(hash_seed)
@@ -147,8 +148,6 @@ def plan(baseline_meta: dict[str, Any], runs: int, hash_seed: str, cpu_count: in
     for v in variations:
         for k in range(1, repeats + 1):
             specs.append(RunSpec(v.key if repeats == 1 else f"{v.key} #{k}", v))
-    if power:
-        specs += [RunSpec(p.key, p) for p in power_settings(hash_seed)]
     return specs, notes
 
 
@@ -219,7 +218,7 @@ def run_all(nodeid: str, runs: int, scratch: Path, cwd: Path, jobs: int,
     after_first(first)
     if baseline_only:
         return [first], []
-    specs, notes = plan(first.run.meta, runs, hash_seed, os.cpu_count(), x86=not baseline_problem(), power=False)
+    specs, notes = plan(first.run.meta, runs, hash_seed, os.cpu_count(), x86=not baseline_problem())
     return [first, *run_specs(nodeid, specs, scratch, cwd, jobs, progress)], notes
 
 
@@ -370,7 +369,9 @@ def calibrate(nodeid: str, runs: int = DEFAULT_RUNS, safety: float = DEFAULT_SAF
             cal.notes.append(f"power checks skipped: {why}")
             return recorded, cal
         planted = run_specs(nodeid, power_specs(), scratch, cwd, jobs, progress)
-        return recorded, analyse(nodeid, [*noise, *planted], safety, notes, power_reference=local)
+        cal.runs.extend(planted)
+        add_power(cal, local, planted)
+        return recorded, cal
 
     if keep is not None:
         keep.mkdir(parents=True, exist_ok=True)

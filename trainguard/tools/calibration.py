@@ -490,9 +490,15 @@ def analyse(nodeid: str, runs: Sequence[RecordedRun], safety: float = DEFAULT_SA
         problems=problems, bitwise=bitwise, fixed_difference=fixed_difference, per_run=per_run, current=current,
         current_exact=bool(tol.get("exact", False)), proposal=proposal, metric_proposals=metric_proposals,
     )
-    base = power_reference if power_reference is not None else runs[0]
-    cal.power = [power_check(cal, base, r) for r in runs if r.spec.setting.plant]
+    add_power(cal, power_reference if power_reference is not None else runs[0],
+              [r for r in runs if r.spec.setting.plant])
     return cal
+
+
+def add_power(cal: Calibration, reference: RecordedRun, planted: Sequence[RecordedRun]) -> None:
+    """Judge runs with a planted change under the calibration's tolerance, against `reference` (a run
+    of the same machine); the runs themselves belong in `cal.runs`."""
+    cal.power.extend(power_check(cal, reference, r) for r in planted)
 
 
 @dataclass
