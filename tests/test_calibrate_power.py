@@ -325,25 +325,25 @@ def test_calibrate_from_two_runners_keeps_power_or_refuses(bakery, capsys):
     assert run_pytest(bakery, "--trainguard-bless", "-k", "noisy or thermometer").returncode == 0
     # two "CI runners": another CPU's kernel dispatch, another thread count; each saves its runs
     # (the jitter, from os.urandom at every step, keeps any run from matching bit for bit)
-    runner_a = run_pytest(bakery, "--trainguard-results=ci-intel", "-k", "noisy or thermometer",
+    runner_a = run_pytest(bakery, "--trainguard-results=ci-runner-1", "-k", "noisy or thermometer",
                           env={"ATEN_CPU_CAPABILITY": "default", "MKL_ENABLE_INSTRUCTIONS": "SSE4_2"})
-    runner_b = run_pytest(bakery, "--trainguard-results=ci-amd", "--trainguard-threads=1", "-k", "noisy or thermometer")
+    runner_b = run_pytest(bakery, "--trainguard-results=ci-runner-2", "--trainguard-threads=1", "-k", "noisy or thermometer")
     assert runner_a.returncode in (0, 1) and runner_b.returncode in (0, 1), runner_a.stdout + runner_b.stdout
-    for folder in ("ci-intel", "ci-amd"):
+    for folder in ("ci-runner-1", "ci-runner-2"):
         for test in (NOISY, LOOSE):
             assert (paths.golden_folder(bakery / folder, test) / "metrics.parquet").is_file(), (folder, test)
 
     # The noisy log: the loss gets its own tolerance, the state keeps a tight one, and the
     # planted 1 % learning-rate change is caught, so the proposal is written.
-    assert main(["calibrate", NOISY, "--from", "golden", "ci-intel", "ci-amd", "--write", "--jobs", "2"]) == 0
+    assert main(["calibrate", NOISY, "--from", "golden", "ci-runner-1", "ci-runner-2", "--write", "--jobs", "2"]) == 0
     out = capsys.readouterr().out
     assert "one from each folder given" in out and "all compared with golden" in out
-    for label in ("golden", "ci-intel", "ci-amd"):
+    for label in ("golden", "ci-runner-1", "ci-runner-2"):
         assert re.search(rf"^  {label} +read from {label}, recorded on ", out, re.M), label
     assert "CAUGHT" in _power_row(out, "lr:0.01")
     stored = golden.read_run(paths.golden_folder(bakery / "golden", NOISY))
     assert stored.meta["calibrated"]["metrics"]["loss"]["rtol"] >= 1e-4 > stored.meta["calibrated"]["rtol"]
-    for folder in ("ci-intel", "ci-amd"):  # both runners now pass under what was stored
+    for folder in ("ci-runner-1", "ci-runner-2"):  # both runners now pass under what was stored
         run = golden.read_run(paths.golden_folder(bakery / folder, NOISY))
         assert compare(stored, run, calibrated_policy(Policy(), stored.meta)).outcome in (IDENTICAL, CLOSE)
 
@@ -351,7 +351,7 @@ def test_calibrate_from_two_runners_keeps_power_or_refuses(bakery, capsys):
     # change through, so nothing is written, and the report names what forced it.
     folder = paths.golden_folder(bakery / "golden", LOOSE)
     before = {p.name: p.read_bytes() for p in folder.iterdir()}
-    assert main(["calibrate", LOOSE, "--from", "golden", "ci-intel", "ci-amd", "--write", "--jobs", "2"]) == 1
+    assert main(["calibrate", LOOSE, "--from", "golden", "ci-runner-1", "ci-runner-2", "--write", "--jobs", "2"]) == 1
     out = capsys.readouterr().out
     assert "MISSED" in _power_row(out, "lr:0.01"), out
     assert "lets a 1 % learning-rate change through" in out
