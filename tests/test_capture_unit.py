@@ -388,7 +388,7 @@ def test_write_read_round_trip_is_equal(tmp_path):
     assert back.tensors["big"].values is None
     assert back.tensors["big"].sketch is not None  # too large for values: a sketch stands in
     assert {k: back.meta[k] for k in run.meta} == run.meta
-    assert back.meta["format_version"] == golden_format.FORMAT_VERSION == 2
+    assert back.meta["format_version"] == golden_format.FORMAT_VERSION == 3
     # the round trip compares as identical
     assert compare(run, back, Policy(exact=True)).outcome == IDENTICAL
     # the stored layout is the documented one (read with pyarrow directly)

@@ -6,6 +6,7 @@ import hashlib
 import json
 import os
 import struct
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -81,11 +82,11 @@ def _independent_digest(path: Path) -> str:
     return "sha256:" + hashlib.sha256(body).hexdigest()
 
 
-def test_every_file_carries_format_2_metadata_and_a_digest_matching_the_documented_definition(folder):
+def test_every_file_carries_current_format_metadata_and_a_digest_matching_the_documented_definition(folder):
     run_ids = set()
     for name in ("metrics.parquet", "state.parquet", "trace.parquet"):
         meta = pq.ParquetFile(folder / name).schema_arrow.metadata
-        assert meta[b"trainguard.format_version"] == b"2"
+        assert meta[b"trainguard.format_version"] == b"3"
         assert meta[b"trainguard.writer"] == __version__.encode()
         digest = meta[b"trainguard.digest"].decode()
         assert digest.startswith("sha256:") and len(digest) == 7 + 64
@@ -200,15 +201,16 @@ def test_upgrade_goldens_is_idempotent_keeps_content_and_adds_digests(tmp_path, 
     assert main(["upgrade-goldens", str(root)]) == 0
     out = capsys.readouterr().out
     assert "1 of 2 golden folder(s)" in out and "upgraded from format 1" in out
+    assert "its trace was dropped: re-bless the test to record one" in out  # events were grouped another way
     assert "vouches for their content" in out  # the user is told what the upgrade takes on trust
     assert snapshot(current) == current_before  # already current: not rewritten
     back = golden.read_run(old)
-    assert back.meta["format_version"] == 2 and same_run(back, A)
-    for name in ("metrics.parquet", "state.parquet", "trace.parquet"):
+    assert back.meta["format_version"] == 3 and same_run(back, replace(A, trace=None))
+    for name in ("metrics.parquet", "state.parquet"):
         meta = pq.ParquetFile(old / name).schema_arrow.metadata
         assert meta[b"trainguard.digest"].decode() == _independent_digest(old / name)
     assert pq.ParquetFile(old / "state.parquet").schema_arrow.metadata[b"trainguard.meta"] == meta_before
-    assert sorted(p.name for p in old.iterdir()) == ["metrics.parquet", "state.parquet", "trace.parquet"]
+    assert sorted(p.name for p in old.iterdir()) == ["metrics.parquet", "state.parquet"]
 
     after_first = snapshot(root)
     assert main(["upgrade-goldens", str(root)]) == 0
@@ -251,15 +253,16 @@ def test_upgrade_of_a_folder_is_atomic_when_interrupted(tmp_path, monkeypatch):
         golden.upgrade_goldens(root)
     assert snapshot(root) == before  # the temp files of the interrupted upgrade were removed
     monkeypatch.undo()
-    assert golden.upgrade_goldens(root) == [(target, "upgraded from format 1")]
-    assert same_run(golden.read_run(target), A)
+    assert golden.upgrade_goldens(root) == [
+        (target, "upgraded from format 1 (its trace was dropped: re-bless the test to record one)")]
+    assert same_run(golden.read_run(target), replace(A, trace=None))
 
 
 def test_a_newer_format_is_refused_saying_which_trainguard_reads_it(folder, tmp_path, capsys):
     for name in ("metrics.parquet", "state.parquet", "trace.parquet"):
-        rewrite(folder / name, metadata={b"trainguard.format_version": b"3", b"trainguard.writer": b"0.9.0"})
-    error = _corrupt(folder, folder / "metrics.parquet", "golden format 3", "by trainguard 0.9.0",
-                     f"this trainguard ({__version__}) reads formats 1 to 2")
+        rewrite(folder / name, metadata={b"trainguard.format_version": b"4", b"trainguard.writer": b"0.9.0"})
+    error = _corrupt(folder, folder / "metrics.parquet", "golden format 4", "by trainguard 0.9.0",
+                     f"this trainguard ({__version__}) reads formats 1 to 3")
     assert isinstance(error, GoldenVersionError) and "trainguard 0.9.0 or later" in error.fix
     before = snapshot(folder.parent)
     assert main(["upgrade-goldens", str(folder.parent)]) == 2  # never "upgrades" a newer golden down
@@ -504,3 +507,27 @@ def test_ini_max_file_mib_refuses_large_goldens_in_a_real_run(pytester):
     assert "over the 104-byte limit for golden files" in out and "metrics.parquet" in out
     assert "trainguard_max_file_mib" in out  # the fix names the option
     assert "Traceback" not in out
+
+
+def test_a_format_2_golden_is_read_without_its_trace_and_upgraded_to_3(tmp_path, monkeypatch, capsys):
+    """Format 3 numbers trace events in call order; a format-2 trace grouped them by stage, so it is
+    left out when read (the report says why) and dropped by upgrade-goldens; metrics and state stay."""
+    from trainguard.core import golden_format
+    from trainguard.core.comparison import compare
+    from trainguard.core.tolerance import Policy
+
+    root = tmp_path / "golden"
+    target = root / "t" / "test_oven"
+    with monkeypatch.context() as m:
+        m.setattr(golden_format, "FORMAT_VERSION", 2)
+        golden.write_run(target, A)
+    assert pq.ParquetFile(target / "trace.parquet").schema_arrow.metadata[b"trainguard.format_version"] == b"2"
+    back = golden.read_run(target)
+    assert back.meta["format_version"] == 2 and back.trace is None and same_run(back, replace(A, trace=None))
+    cmp = compare(back, A, Policy())
+    assert cmp.outcome == "identical" and cmp.trace is None
+    assert cmp.trace_note.startswith("trace: not compared, the golden's trace is in format 2")
+    assert main(["upgrade-goldens", str(root)]) == 0
+    assert "upgraded from format 2 (its trace was dropped" in capsys.readouterr().out
+    assert sorted(p.name for p in target.iterdir()) == ["metrics.parquet", "state.parquet"]
+    assert golden.read_run(target).meta["format_version"] == 3

@@ -43,26 +43,27 @@ def entry(step: int, stage: str, name: str, value: float = 1.0, call: int = 0, s
 
 
 def greenhouse_trace(steps: int = 5) -> list[TraceEntry]:
-    """A plain (one evaluation per step) trace: data, forward, backward, update per step."""
+    """A plain loop's trace, numbered the way `Tracer` numbers events: per step the model's
+    inputs (event 0), its outputs (1), the loss (2), the gradients (3), the update (4)."""
     out = []
     for s in range(steps):
         out += [
-            entry(s, "data", "input.0", 10.0 + s),
-            entry(s, "forward", "output", 20.0 + s),
-            entry(s, "forward", "loss", 0.5 / (s + 1)),
-            entry(s, "backward", "grad vent.weight", -0.25 + s),
-            entry(s, "backward", "grad vent.bias", 0.125 + s),
-            entry(s, "update", "vent.weight", 3.0 + s),
-            entry(s, "update", "vent.bias", 4.0 + s),
-            entry(s, "update", "state vent.weight.momentum_buffer", 5.0 + s),
+            entry(s, "data", "input.0", 10.0 + s, call=0),
+            entry(s, "forward", "output", 20.0 + s, call=1),
+            entry(s, "forward", "loss", 0.5 / (s + 1), call=2),
+            entry(s, "backward", "grad vent.weight", -0.25 + s, call=3),
+            entry(s, "backward", "grad vent.bias", 0.125 + s, call=3),
+            entry(s, "update", "vent.weight", 3.0 + s, call=4),
+            entry(s, "update", "vent.bias", 4.0 + s, call=4),
+            entry(s, "update", "state vent.weight.momentum_buffer", 5.0 + s, call=4),
         ]
     return out
 
 
-def replaced(trace: list[TraceEntry], step: int, name: str, value: float, call: int = 0) -> list[TraceEntry]:
+def replaced(trace: list[TraceEntry], step: int, name: str, value: float, call: int | None = None) -> list[TraceEntry]:
     out = []
     for e in trace:
-        if e.step == step and e.name == name and e.call == call:
+        if e.step == step and e.name == name and call in (None, e.call):
             e = entry(e.step, e.stage, e.name, value, call=e.call, shape=e.shape, dtype=e.dtype)
         out.append(e)
     return out
@@ -73,8 +74,8 @@ def test_identical_traces_have_no_divergence():
     diff = compare_traces(golden, list(golden), TOL)
     assert diff.verdict == IDENTICAL
     assert diff.first_bitwise is None and diff.first_change is None
-    assert diff.groups == 5 * 4  # 5 steps x 4 stages
-    assert diff.summary() == "trace: all 20 step/stage groups identical"
+    assert diff.groups == 5 * 5  # 5 steps x 5 events
+    assert diff.summary() == "trace: all 25 events identical"
 
 
 def test_update_change_names_step_stage_tensors_and_clean_earlier_stages():
@@ -93,7 +94,7 @@ def test_update_change_names_step_stage_tensors_and_clean_earlier_stages():
 
 @pytest.mark.parametrize("stage, name, expected_tail", [
     ("data", "input.0", ""),
-    ("forward", "loss", "; data identical up to there"),
+    ("forward", "loss", "; the step's earlier events (data, forward) identical"),  # the outputs' event came first
     ("backward", "grad vent.bias", "; data and forward identical up to there"),
 ])
 def test_each_stage_is_named_with_the_stages_before_it(stage, name, expected_tail):
@@ -116,7 +117,7 @@ def test_earlier_step_beats_earlier_stage():
 
 def test_within_tolerance_only_reports_bitwise_prefix():
     golden = greenhouse_trace()
-    new = [entry(e.step, e.stage, e.name, e.min * (1 + 1e-9) if e.step >= 4 else e.min) for e in golden]
+    new = [entry(e.step, e.stage, e.name, e.min * (1 + 1e-9) if e.step >= 4 else e.min, call=e.call) for e in golden]
     diff = compare_traces(golden, new, TOL)
     assert diff.verdict == CLOSE
     assert diff.first_change is None
@@ -140,10 +141,19 @@ def test_within_tolerance_then_change_reports_both_points():
 
 def test_missing_entry_shape_and_dtype_changes_are_changes():
     golden = greenhouse_trace(2)
-    missing = [e for e in golden if not (e.step == 1 and e.name == "grad vent.bias")]
+    # An entry missing from an event both runs hold is structure (a parameter that stopped getting
+    # a gradient, an output no longer returned), listed by name, not a divergence of values.
+    missing = [e for e in golden if not (e.step >= 1 and e.name == "grad vent.bias")]
     diff = compare_traces(golden, missing, TOL)
-    assert (diff.first_change.step, diff.first_change.stage, diff.first_change.names) == (1, "backward", ["grad vent.bias"])
-    reshaped = [entry(e.step, e.stage, e.name, e.min, shape=(3,)) if e.name == "output" else e for e in golden]
+    assert diff.first_change is None and diff.removed == [(1, "backward", "grad vent.bias")]
+    assert diff.summary() == ("trace: all 10 events identical; 1 trace entry removed (first at step 1, stage backward): "
+                              "grad vent.bias")
+    # A whole event missing shifts the events after it: that is where the runs part.
+    no_grads = [e for e in golden if not (e.step == 1 and e.stage == "backward")]
+    diff = compare_traces(golden, no_grads, TOL)
+    assert (diff.first_change.step, diff.first_change.stage) == (1, "backward")
+    reshaped = [entry(e.step, e.stage, e.name, e.min, shape=(3,), call=e.call) if e.name == "output" else e
+                for e in golden]
     assert compare_traces(golden, reshaped, TOL).first_change.stage == "forward"
     # same bits pattern in the stats but another dtype: still a change
     retyped = [TraceEntry(**{**e.__dict__, "dtype": "float64"}) if e.name == "input.0" and e.step == 1 else e
@@ -154,14 +164,14 @@ def test_missing_entry_shape_and_dtype_changes_are_changes():
 def test_closure_evaluations_are_walked_in_call_order():
     """L-BFGS: evaluation 0's backward comes before evaluation 1's forward; the update after all."""
     golden = []
-    for call in range(3):
-        sfx = "" if call == 0 else f"@{call}"
-        golden += [entry(0, "data", "input.0" + sfx, 1.0, call=call), entry(0, "forward", "loss" + sfx, 2.0 + call, call=call),
-                   entry(0, "backward", "grad vent.weight" + sfx, 3.0 + call, call=call)]
-    golden += [entry(0, "update", "vent.weight", 7.0)]
+    for k in range(3):
+        sfx = "" if k == 0 else f"@{k}"
+        golden += [entry(0, "data", "input.0" + sfx, 1.0, call=3 * k), entry(0, "forward", "loss" + sfx, 2.0 + k, call=3 * k + 1),
+                   entry(0, "backward", "grad vent.weight" + sfx, 3.0 + k, call=3 * k + 2)]
+    golden += [entry(0, "update", "vent.weight", 7.0, call=9)]
     # A backward change in evaluation 1 moves the parameters, so evaluation 2's forward and the update differ too.
-    new = replaced(golden, 0, "grad vent.weight@1", 30.0, call=1)
-    new = replaced(new, 0, "loss@2", 40.0, call=2)
+    new = replaced(golden, 0, "grad vent.weight@1", 30.0)
+    new = replaced(new, 0, "loss@2", 40.0)
     new = replaced(new, 0, "vent.weight", 70.0)
     # Entries listed stage-first (all forwards before all backwards) must not change the answer.
     order = {"data": 0, "forward": 1, "backward": 2, "update": 3}
@@ -175,7 +185,7 @@ def test_closure_evaluations_are_walked_in_call_order():
 
 def test_long_name_lists_are_cut():
     golden = [entry(0, "update", f"bed{i}.weight", float(i)) for i in range(MAX_NAMES + 3)]
-    new = [entry(0, "update", f"bed{i}.weight", float(i) + 100) for i in range(MAX_NAMES + 3)]
+    new = [entry(0, "update", f"bed{i}.weight", float(i) + 100) for i in range(MAX_NAMES + 3)]  # one event
     text = compare_traces(golden, new, TOL).summary()
     assert text.startswith("first divergence: step 0, stage update (bed0.weight, bed1.weight")
     assert f"bed{MAX_NAMES - 1}.weight and 3 more)" in text and f"bed{MAX_NAMES}.weight" not in text
@@ -223,14 +233,17 @@ def test_watch_twice_is_a_usage_error_and_close_restores_everything():
         # a second recorder in the same process cannot hook torch.Tensor.backward a second time
         with pytest.raises(UsageError, match="already running"):
             Trajectory().watch(*_vent_model_and_opt())
-        # recording works: one step gives data, forward (output, loss), backward, update entries
+        # recording works: the weights at watch time (init), then one event each for the
+        # inputs, the outputs, the loss, the gradients and the update
         x = torch.ones(2, 3)
         opt.zero_grad()
         model(x).pow(2).mean().backward()
         opt.step()
-        stages = [e.stage for e in traj.to_run().trace]
-        assert stages[:3] == ["data", "forward", "forward"]
-        assert {"backward", "update"} <= set(stages) and traj.to_run().trace[-1].step == 0
+        trace = traj.to_run().trace
+        events = sorted({(e.call, e.stage) for e in trace})
+        assert events == [(0, "init"), (1, "data"), (2, "forward"), (3, "forward"), (4, "backward"), (5, "update")]
+        assert {e.name for e in trace if e.stage == "init"} == {n for n, _ in model.named_parameters()}
+        assert trace[-1].step == 0
     finally:
         traj.close()
     traj.close()  # safe twice
@@ -408,23 +421,25 @@ def test_vent_forecaster_lbfgs(trajectory):
 
 #: What each plant must be attributed to. Reasoning, per plant:
 #: - order/augment change only the batch fed from step 3/5 on: stage data at that step.
-#: - activation (from step 2) changes the outputs and hence the loss: forward at step 2.
-#: - loss_sum (from step 4) keeps the outputs, changes only the loss: forward at step 4.
+#: - activation (from step 2) changes the outputs (and hence the loss, one event later): forward at step 2.
+#: - loss_sum (from step 4) keeps the outputs (an earlier forward event), changes only the loss: forward at step 4.
 #: - backward (from step 2): VentGate's forward is unchanged, its derivative is not; only
 #:   fc1 lies below VentGate, so only fc1's gradients change (fc2's gradient is h^T dL/dout).
 #: - momentum 0.9 -> 0.8: PyTorch's SGD documentation (torch.optim.SGD, algorithm box) sets
 #:   b_1 = g_1 at the first step and b_t = mu * b_{t-1} + (1 - dampening) g_t after, so the
 #:   momentum value first matters at step 1, in the update.
-#: - weight decay: g_t + lambda * theta is used from the first step (same docs): update at step 0.
+#: - weight decay: g_t + lambda * theta is used from the first step (same docs): update at step 0,
+#:   after step 0's init event (the weights before training, which decay does not touch).
 #: - lbfgs_backward (from step 1): evaluation 0 of step 1 already has wrong gradients; the
 #:   parameters move within the step, so later evaluations' forwards differ too, but those
 #:   come after that backward in call order.
 EXPECTED = {
     "test_vent_forecaster[order]": "first divergence: step 3, stage data (input.0)",
     "test_vent_forecaster[augment]": "first divergence: step 5, stage data (input.0)",
-    "test_vent_forecaster[activation]": "first divergence: step 2, stage forward (output, loss); "
+    "test_vent_forecaster[activation]": "first divergence: step 2, stage forward (output); "
                                         "data identical up to there",
-    "test_vent_forecaster[loss_sum]": "first divergence: step 4, stage forward (loss); data identical up to there",
+    "test_vent_forecaster[loss_sum]": "first divergence: step 4, stage forward (loss); the step's earlier events "
+                                      "(data, forward) identical",
     "test_vent_forecaster[backward]": "first divergence: step 2, stage backward (grad fc1.weight, grad fc1.bias); "
                                       "data and forward identical up to there",
     "test_vent_forecaster[momentum]": "first divergence: step 1, stage update (fc1.weight, fc1.bias, fc2.weight, "
@@ -432,7 +447,7 @@ EXPECTED = {
                                       "and 2 more); data, forward and backward identical up to there",
     "test_vent_forecaster[decay]": "first divergence: step 0, stage update (fc1.weight, fc1.bias, fc2.weight, "
                                    "fc2.bias, state fc1.weight.momentum_buffer, state fc1.bias.momentum_buffer "
-                                   "and 2 more); data, forward and backward identical up to there",
+                                   "and 2 more); init, data, forward and backward identical up to there",
     "test_vent_forecaster_lbfgs": "first divergence: step 1, stage backward (grad fc1.weight, grad fc1.bias); "
                                   "data and forward identical up to there",
 }
@@ -466,13 +481,14 @@ def test_each_planted_change_is_attributed_to_its_stage_and_step(pytester: pytes
     # The L-BFGS trace records each closure evaluation in call order, later ones with an @k suffix.
     trace = pq.read_table(golden / "test_vent_forecaster_lbfgs" / "trace.parquet").to_pylist()
     step0 = sorted((r for r in trace if r["step"] == 0), key=lambda r: r["seq"])
-    calls = sorted({r["call"] for r in step0})
-    assert len(calls) >= 2, "L-BFGS with max_iter=3 evaluates the closure more than once per step"
     names = {r["name"] for r in step0}
-    for k in calls[1:]:
+    evaluations = sum(1 for n in names if n == "loss" or n.startswith("loss@"))
+    assert evaluations >= 2, "L-BFGS with max_iter=3 evaluates the closure more than once per step"
+    for k in range(1, evaluations):
         assert {f"input.0@{k}", f"output@{k}", f"loss@{k}", f"grad fc1.weight@{k}"} <= names
-    per_call = [(r["call"], r["stage"]) for r in step0 if r["stage"] != "update"]
-    assert per_call == sorted(per_call, key=lambda cs: (cs[0], ["data", "forward", "backward"].index(cs[1])))
+    assert step0[0]["stage"] == "init" and {r["stage"] for r in trace if r["step"] > 0} >= {"data", "update"}
+    events = [r["call"] for r in step0]
+    assert events == sorted(events), "events are numbered in recording order"
     assert [r["stage"] for r in step0][-1] == "update"
     updated = {r["name"] for r in step0 if r["stage"] == "update"}
     # parameters and L-BFGS's own state (kept under the first parameter) after the step

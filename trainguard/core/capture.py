@@ -8,7 +8,7 @@ moment it is handed over (so a mistake points at the offending line) and builds 
 from __future__ import annotations
 
 import numbers
-from typing import Any, Iterator
+from typing import Any, Iterator, Mapping
 
 import numpy as np
 
@@ -194,15 +194,7 @@ class Trajectory:
             self._names_by_param.setdefault(id(param), prefix + name)
 
     def _optimizer_entries(self, optimizer: Any, prefix: str) -> Iterator[tuple[str, str, Any]]:
-        for g, group in enumerate(optimizer.param_groups):
-            for key in sorted(group):
-                if key == "params":
-                    continue
-                yield from _hyper_entries(f"{prefix}param_groups.{g}.{key}", group[key])
-            for p, param in enumerate(group["params"]):
-                pname = self._names_by_param.get(id(param), f"group{g}.param{p}")
-                for key, value in sorted(optimizer.state.get(param, {}).items(), key=lambda kv: str(kv[0])):
-                    yield from _state_entries(f"{prefix}{pname}.{key}", value)
+        return optimizer_entries(optimizer, prefix, self._names_by_param)
 
     def _describe(self, name: str, kind: str, value: Any) -> TensorRecord:
         if isinstance(value, np.generic):  # a NumPy scalar keeps its dtype: float32 -> float64 is a change
@@ -250,48 +242,72 @@ class Trajectory:
         )
 
     # -- per-step trace ------------------------------------------------------------
-    def watch(self, model: Any, optimizer: Any) -> None:
-        """Trace every optimizer step: inputs, outputs and loss, gradients, updated parameters and state.
+    def watch(self, *pair: Any, **named: Any) -> None:
+        """Trace every training step: initial weights, inputs, outputs and loss, gradients, updates.
 
-        The trace lets a failure report name the first step and stage (data, forward,
+        The trace lets a failure report name the first step and stage (init, data, forward,
         backward, update) where the run departs from its golden. Call it once, before training.
+        Watching changes nothing that `trajectory.state` records: names there depend only on
+        what `state` is given, so adding or removing `watch` leaves a golden's state as it was.
 
         Parameters
         ----------
-        model : torch.nn.Module
-            Its forward inputs (stage data) and outputs (stage forward) are recorded.
-        optimizer : torch.optim.Optimizer
-            Gradients before each step (backward), parameters and state after it (update).
+        *pair : torch.nn.Module, torch.optim.Optimizer
+            One network and its optimizer, traced under their own names (`fc1.weight`).
+        **named : module, or (module, optimizer)
+            Several networks, each under its keyword as prefix, the way `trajectory.state`
+            names them: `watch(generator=(G, g_opt), discriminator=(D, d_opt))`. A module
+            alone (a frozen teacher, an encoder another optimizer steps) is traced too.
 
         Raises
         ------
         UsageError
-            Called twice, or with something that is not a module and an optimizer.
+            Called twice, nothing or no optimizer given, or something that is not a module
+            and an optimizer.
 
         Examples
         --------
         >>> trajectory.watch(model, opt)   # doctest: +SKIP
-        >>> for step in range(40):         # doctest: +SKIP
-        ...     train_step(model, opt, batch(step))
+        >>> trajectory.watch(generator=(G, g_opt), discriminator=(D, d_opt))   # doctest: +SKIP
         """
         __tracebackhide__ = True
         import torch
 
-        from .trace import Tracer
+        from .trace import Tracer, Watched
 
         if self._tracer is not None:
             raise UsageError("trajectory.watch: already watching; call it once per test")
-        if not isinstance(model, torch.nn.Module):
-            raise UsageError(f"trajectory.watch: model must be a torch.nn.Module, got {type(model).__name__}")
-        if not isinstance(optimizer, torch.optim.Optimizer):
-            raise UsageError(
-                f"trajectory.watch: optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
-        self._learn_names(model, "")
-        self._tracer = Tracer(
-            model, optimizer,
-            state_entries=lambda opt: self._optimizer_entries(opt, ""),
-            param_names=lambda p: self._names_by_param.get(id(p), "unnamed"),
-        )
+        watched: list[Watched] = []
+        if pair:
+            if named:
+                raise UsageError("trajectory.watch: give either (model, optimizer) or keyword=(module, optimizer) "
+                                 "pairs, not both")
+            if len(pair) != 2:
+                raise UsageError(f"trajectory.watch: expected (model, optimizer), got {len(pair)} positional "
+                                 "argument(s); several networks go as keywords: watch(generator=(G, g_opt), ...)")
+            watched.append(Watched("", *pair))
+        for key, value in named.items():
+            if isinstance(value, tuple) and len(value) == 2:
+                watched.append(Watched(key + ".", *value))
+            elif isinstance(value, torch.nn.Module):
+                watched.append(Watched(key + ".", value, None))
+            else:
+                raise UsageError(f"trajectory.watch({key}=...): give a module or a (module, optimizer) pair, "
+                                 f"got {type(value).__name__}")
+        if not watched:
+            raise UsageError("trajectory.watch(): nothing to watch; pass (model, optimizer) or "
+                             "keyword=(module, optimizer) pairs")
+        for w in watched:
+            where = f"trajectory.watch({w.prefix[:-1]}=...)" if w.prefix else "trajectory.watch"
+            if not isinstance(w.module, torch.nn.Module):
+                raise UsageError(f"{where}: model must be a torch.nn.Module, got {type(w.module).__name__}")
+            if w.optimizer is not None and not isinstance(w.optimizer, torch.optim.Optimizer):
+                raise UsageError(
+                    f"{where}: optimizer must be a torch.optim.Optimizer, got {type(w.optimizer).__name__}")
+        if all(w.optimizer is None for w in watched):
+            raise UsageError("trajectory.watch: no optimizer given; a training step ends when the watched "
+                             "optimizers have stepped, so pass at least one (module, optimizer) pair")
+        self._tracer = Tracer(watched, state_entries=optimizer_entries)
 
     def close(self) -> None:
         """Remove the trace's hooks (the fixture calls this after every test)."""
@@ -307,6 +323,22 @@ class Trajectory:
         tensors = {name: self._tensors[name] for name in sorted(self._tensors)}
         trace = list(self._tracer.entries) if self._tracer is not None else None
         return Run(metrics=metrics, tensors=tensors, trace=trace)
+
+
+def optimizer_entries(optimizer: Any, prefix: str, names: Mapping[int, str]) -> Iterator[tuple[str, str, Any]]:
+    """An optimizer's numeric hyperparameters per param group, then its state per parameter.
+
+    `names` maps id(parameter) to its name; parameters it does not know are `group<g>.param<p>`.
+    """
+    for g, group in enumerate(optimizer.param_groups):
+        for key in sorted(group):
+            if key == "params":
+                continue
+            yield from _hyper_entries(f"{prefix}param_groups.{g}.{key}", group[key])
+        for p, param in enumerate(group["params"]):
+            pname = names.get(id(param), f"group{g}.param{p}")
+            for key, value in sorted(optimizer.state.get(param, {}).items(), key=lambda kv: str(kv[0])):
+                yield from _state_entries(f"{prefix}{pname}.{key}", value)
 
 
 def _module_entries(module: Any, prefix: str) -> Iterator[tuple[str, str, Any]]:

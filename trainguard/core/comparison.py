@@ -13,6 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .attribution import TraceDiff, compare_traces
+from .golden_format import TRACE_FORMAT
 from .meta import GoldenMeta
 from .records import MetricSeries, Run, TensorRecord
 from .tolerance import Policy, Tolerance, bitwise_equal, is_exact_dtype, judge, within
@@ -36,6 +37,7 @@ class MetricDiff:
     missing_steps: list[int] = field(default_factory=list)
     added_steps: list[int] = field(default_factory=list)
     note: str = ""  # e.g. "diverged to NaN at step 12", "metric missing"
+    structural: bool = False  # logged by one side only: reported as a structure change, not a value
 
 
 @dataclass
@@ -55,6 +57,44 @@ class TensorDiff:
     sketch_allowed: float | None = None
     scale: float = math.nan  # largest finite |golden| among the compared numbers: max_abs / scale is scale-free
     judged_by: str = ""  # when not the policy's pair: "float16's default rtol=..., atol=..." or "exact (int64)"
+    structural: bool = False  # recorded by one side only: reported as a structure change, not a value
+
+
+#: What a structure change is about (`StructureChange.what`).
+METRIC, ENTRY, GROUP_KEY = "metric", "state entry", "param-group key"
+
+
+@dataclass
+class StructureChange:
+    """A name present on one side only: a metric, a state entry or a param-group key added or
+    removed, or an entry renamed (same bits under another name)."""
+
+    what: str  # METRIC, ENTRY or GROUP_KEY
+    change: str  # "added", "removed" or "renamed"
+    name: str
+    kind: str = ""  # state entries: parameter, buffer, optimizer, named
+    new_name: str = ""  # renamed: the name in the new run
+    verdict: str = CHANGED  # CLOSE for a param-group key under a tolerance: a note, not a failure
+
+    def describe(self) -> str:
+        what = f"{self.what} ({self.kind})" if self.what == ENTRY and self.kind else self.what
+        if self.change == "renamed":
+            return f"{what} renamed: {self.name} -> {self.new_name} (same bits)"
+        return f"{what} {self.change}: {self.name}"
+
+
+def structure_reason(changes: list[StructureChange], limit: int = 4) -> str:
+    """`2 state entries added: a, b; 1 metric removed: acc`: the one line a summary row needs."""
+    groups: dict[tuple[str, str], list[str]] = {}
+    for c in changes:
+        name = f"{c.name} -> {c.new_name}" if c.change == "renamed" else c.name
+        groups.setdefault((c.what, c.change), []).append(name)
+    parts = []
+    for (what, change), names in groups.items():
+        plural = what if len(names) == 1 else ("state entries" if what == ENTRY else what + "s")
+        shown = ", ".join(names[:limit]) + (f" and {len(names) - limit} more" if len(names) > limit else "")
+        parts.append(f"{len(names)} {plural} {change}: {shown}")
+    return "; ".join(parts)
 
 
 @dataclass
@@ -66,6 +106,13 @@ class Comparison:
     golden_meta: GoldenMeta = field(default_factory=GoldenMeta)
     new_meta: GoldenMeta = field(default_factory=GoldenMeta)
     trace: TraceDiff | None = None  # when both runs carry a trace
+    trace_note: str = ""  # why the new run's trace was not compared (the golden has none, or an old one)
+    structure: list[StructureChange] = field(default_factory=list)  # names on one side only
+    numbers: str = IDENTICAL  # the worst verdict over the numbers both sides hold
+
+    @property
+    def structure_verdict(self) -> str:
+        return worst(c.verdict for c in self.structure)
 
     @property
     def failed(self) -> bool:
@@ -124,7 +171,8 @@ def _fill_metric_difference(diff: MetricDiff, common: np.ndarray, g: np.ndarray,
 def compare_metric(name: str, golden: MetricSeries | None, new: MetricSeries | None, policy: Policy) -> MetricDiff:
     tol = policy.for_metric(name)
     if golden is None or new is None:
-        return MetricDiff(name, CHANGED, tol, note="not logged by the new run" if new is None else "not in the golden")
+        return MetricDiff(name, CHANGED, tol, note="not logged by the new run" if new is None else "not in the golden",
+                          structural=True)
     if np.array_equal(golden.steps, new.steps):  # the usual case: no sorting, no gathering
         common, g, n = golden.steps, golden.values, new.values
         diff = MetricDiff(name, IDENTICAL, tol, steps_compared=int(common.size))
@@ -148,7 +196,7 @@ def compare_tensor(name: str, golden: TensorRecord | None, new: TensorRecord | N
         present = golden or new
         assert present is not None
         reason = "not recorded by the new run" if new is None else "not in the golden"
-        return TensorDiff(name, present.kind, CHANGED, [reason], numel=present.numel)
+        return TensorDiff(name, present.kind, CHANGED, [reason], numel=present.numel, structural=True)
     j = judge(golden, new, policy.default, exact=policy.exact)
     diff = TensorDiff(name, golden.kind, j.verdict, j.reasons, basis=j.basis, numel=golden.numel,
                       sketch_distance=j.sketch_distance, sketch_allowed=j.sketch_allowed)
@@ -210,8 +258,55 @@ def compare(golden: Run, new: Run, policy: Policy) -> Comparison:
         compare_tensor(name, golden.tensors.get(name), new.tensors.get(name), policy)
         for name in sorted(set(golden.tensors) | set(new.tensors))
     ]
-    outcome = worst([m.verdict for m in metrics] + [t.verdict for t in tensors])
-    trace = None
+    structure = _structure(golden, new, metrics, tensors, policy)
+    numbers = worst([m.verdict for m in metrics if not m.structural] + [t.verdict for t in tensors if not t.structural])
+    outcome = worst([numbers] + [c.verdict for c in structure])
+    trace, note = None, ""
     if golden.trace is not None and new.trace is not None:
         trace = compare_traces(golden.trace, new.trace, policy.default, exact=policy.exact)
-    return Comparison(outcome, metrics, tensors, policy, golden_meta=golden.meta, new_meta=new.meta, trace=trace)
+    elif new.trace is not None:
+        version = golden.meta.format_version
+        note = ("trace: not compared, the golden's trace is in format "
+                f"{version}, which orders events another way; re-bless to record one"
+                if version is not None and version < TRACE_FORMAT else "trace: not compared, the golden has none; re-bless to record one")
+    return Comparison(outcome, metrics, tensors, policy, golden_meta=golden.meta, new_meta=new.meta, trace=trace,
+                      trace_note=note, structure=structure, numbers=numbers)
+
+
+def _structure(golden: Run, new: Run, metrics: list[MetricDiff], tensors: list[TensorDiff],
+               policy: Policy) -> list[StructureChange]:
+    """Names on one side only, as structure changes; an entry whose bits reappear under one other name is renamed.
+
+    A param-group key (a hyperparameter entry) that comes or goes is a note under a tolerance:
+    optimizer libraries add bookkeeping keys (a step counter, an lr snapshot) that no update
+    reads, and whether the numbers moved is judged on the numbers. Under `exact=True` it is a change.
+    """
+    out = [StructureChange(METRIC, "removed" if new.metrics.get(m.name) is None else "added", m.name)
+           for m in metrics if m.structural]
+    removed = [t for t in tensors if t.structural and new.tensors.get(t.name) is None]
+    added = [t for t in tensors if t.structural and golden.tensors.get(t.name) is None]
+
+    def identity(rec: TensorRecord) -> tuple[str, str, tuple[int, ...]]:
+        return rec.sha256, rec.dtype, tuple(rec.shape)
+
+    by_bits: dict[tuple[str, str, tuple[int, ...]], list[TensorDiff]] = {}
+    for t in added:
+        by_bits.setdefault(identity(new.tensors[t.name]), []).append(t)
+    renamed_to: dict[str, str] = {}
+    for t in removed:
+        match = by_bits.get(identity(golden.tensors[t.name]), [])
+        if len(match) == 1 and t.kind != "hyperparameter":
+            renamed_to[t.name] = match.pop().name
+    taken = set(renamed_to.values())
+    for t in removed + added:
+        if t.name in taken:
+            continue
+        if t.name in renamed_to:
+            out.append(StructureChange(ENTRY, "renamed", t.name, t.kind, new_name=renamed_to[t.name]))
+        elif t.kind == "hyperparameter":
+            change = "removed" if t in removed else "added"
+            out.append(StructureChange(GROUP_KEY, change, t.name, verdict=CHANGED if policy.exact else CLOSE))
+            t.verdict = CHANGED if policy.exact else CLOSE
+        else:
+            out.append(StructureChange(ENTRY, "removed" if t in removed else "added", t.name, t.kind))
+    return out

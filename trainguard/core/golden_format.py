@@ -41,7 +41,13 @@ from .version import __version__
 
 #: Format 2 added `trainguard.run_id`, `trainguard.writer` and `trainguard.digest`;
 #: format 1 files (no digest) are still read, and `trainguard upgrade-goldens` converts them.
-FORMAT_VERSION = 2
+#: Format 3 numbers trace events in call order (`call` is the event within the step, stage
+#: `init` added) and keeps a wider count-sketch for large state tensors. A format-2 golden is
+#: read with its trace left out (its events were grouped another way) and compared on
+#: statistics where its sketch is the old size; `upgrade-goldens` drops the old trace.
+FORMAT_VERSION = 3
+#: Formats whose trace is still compared (older traces are left out when read).
+TRACE_FORMAT = 3
 #: Oldest format this trainguard reads.
 OLDEST_FORMAT = 1
 METRICS_FILE = "metrics.parquet"

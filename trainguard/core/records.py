@@ -88,19 +88,20 @@ class TensorRecord(Summarized):
     sketch: np.ndarray | None = None  # count-sketch (checksum.STATE_SKETCH floats) when values are not stored
 
 
-#: Training stages of one optimizer step, in the order they happen.
-STAGES = ("data", "forward", "backward", "update")
+#: Training stages, in the order they first happen: `init` (the watched modules' weights when
+#: `watch` was called, step 0 only), then per step data, forward, backward and update.
+STAGES = ("init", "data", "forward", "backward", "update")
 STAGE_ORDER = {s: i for i, s in enumerate(STAGES)}
 
 
 @dataclass
 class TraceEntry(Summarized):
-    """One tensor seen at one stage of one optimizer step (see `trace`)."""
+    """One tensor seen at one event of one training step (see `trace`)."""
 
     step: int
     stage: str
     seq: int  # order of recording within the step
-    call: int  # forward/backward evaluation within the step (several for closure optimizers such as L-BFGS)
+    call: int  # the event within the step: module calls, losses, backwards and optimizer steps, in call order
     name: str
     dtype: str
     shape: tuple[int, ...]

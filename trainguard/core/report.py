@@ -11,7 +11,7 @@ import math
 import shlex
 from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
-from .comparison import Comparison
+from .comparison import Comparison, structure_reason
 from .text import fmt, join_names, short, table, untrusted
 from .verdicts import CHANGED, CLOSE, IDENTICAL, NO_GOLDEN, NONDETERMINISTIC, UNREADABLE, rank
 
@@ -77,15 +77,33 @@ def describe_comparison(cmp: Comparison) -> str:
     """The body of a report: metric table, tensor table, environment changes."""
     out: list[str] = []
     p = cmp.policy
-    out.append(f"outcome: {cmp.outcome}   tolerance: {p.describe()}")
+    head = f"outcome: {cmp.outcome}   tolerance: {p.describe()}"
+    if cmp.structure:
+        word = cmp.structure_verdict if cmp.structure_verdict == CHANGED else "notes only"
+        head = (f"outcome: {cmp.outcome} (structure: {word}; numbers: {cmp.numbers})   "
+                f"tolerance: {p.describe()}")
+    out.append(head)
+    if cmp.structure:
+        notes = [c for c in cmp.structure if c.verdict != CHANGED]
+        out.append("")
+        out.append("structure (names on one side only; their values are not compared):")
+        for c in cmp.structure[:MAX_ROWS]:
+            note = " (a note: optimizer bookkeeping no update reads; the numbers decide)" if c in notes else ""
+            out.append(f"  {untrusted(c.describe())}{note}")
+        if len(cmp.structure) > MAX_ROWS:
+            out.append(f"  ... and {len(cmp.structure) - MAX_ROWS} more")
     if cmp.trace is not None:
         out.append(cmp.trace.summary())
+    elif cmp.trace_note:
+        out.append(cmp.trace_note)
 
     metric_rows = []
     identical_metrics = 0
     for m in cmp.metrics:
         if m.verdict == IDENTICAL:
             identical_metrics += 1
+            continue
+        if m.structural:  # listed under structure
             continue
         if m.first_step is None:
             metric_rows.append([m.name, m.verdict, "-", "-", "-", "-", "-", "-", m.note])
@@ -118,6 +136,8 @@ def describe_comparison(cmp: Comparison) -> str:
     for t in sorted(cmp.tensors, key=lambda t: (-rank(t.verdict), t.name)):
         if t.verdict == IDENTICAL:
             identical_tensors += 1
+            continue
+        if t.structural:  # listed under structure
             continue
         off = f"{t.elements_off}/{t.numel}" if t.basis == "values" else "-"
         reasons = list(t.reasons)
@@ -167,14 +187,16 @@ def drift(cmp: Comparison) -> float | None:
     exceeds `DRIFT_SIZE`.
     """
     largest = 0.0
+    if any(c.verdict == CHANGED for c in cmp.structure):
+        return None
     for m in cmp.metrics:
-        if m.verdict == IDENTICAL:
+        if m.verdict == IDENTICAL or m.structural:
             continue
         if m.first_step is None or m.missing_steps or m.added_steps or m.note or not math.isfinite(m.rel_diff):
             return None
         scale = abs(m.golden) or 1.0
         largest = max(largest, m.max_abs / scale, m.rel_diff)
-    moved = [t for t in cmp.tensors if t.verdict != IDENTICAL]
+    moved = [t for t in cmp.tensors if t.verdict != IDENTICAL and not t.structural]
     # An entry that is itself rounding residue (a bias's gradient in front of a normalisation layer:
     # zero in exact arithmetic) moves by 100 % of its own size; it is measured against a floor of
     # DRIFT_SIZE times the largest entry that moved instead.
@@ -263,19 +285,30 @@ def render_result(result: GuardResult, bless_command: str, hints: Sequence[str] 
 
 
 def first_divergence(cmp: Comparison | None) -> str:
-    """The one-line answer to "where did it change?" (summary rows, bisect)."""
+    """The one-line answer to "where did it change?" (summary rows, bisect): structure changes
+    first (`2 state entries added: a, b`), then where the numbers part."""
     if cmp is None:
         return ""
-    if cmp.trace is not None and cmp.trace.first_bitwise is not None:
+    numbers = _numbers_divergence(cmp)
+    if cmp.structure:
+        reason = structure_reason(cmp.structure)
+        if all(c.verdict != CHANGED for c in cmp.structure):
+            reason = "note: " + reason
+        return reason + (f"; {numbers}" if numbers else f"; numbers {cmp.numbers}")
+    return numbers
+
+
+def _numbers_divergence(cmp: Comparison) -> str:
+    if cmp.trace is not None and (cmp.trace.first_bitwise is not None or cmp.trace.structure()):
         return cmp.trace.summary()
     for m in cmp.metrics:
-        if m.verdict == CHANGED:
+        if m.verdict == CHANGED and not m.structural:
             if m.first_step is None:
                 return f"metric {m.name}: {m.note}"
             text = (f"{m.name} at step {m.first_step}: {m.golden:.9g} -> {m.new:.9g} "
                     f"(rel {short(m.rel_diff)}, allowed {short(m.allowed)})")
             return text + (f"; {m.note}" if m.note else "")
-    changed = [t.name for t in cmp.tensors if t.verdict == CHANGED]
+    changed = [t.name for t in cmp.tensors if t.verdict == CHANGED and not t.structural]
     if changed:
         return "state: " + join_names(changed, 4)
     for m in cmp.metrics:

@@ -289,8 +289,9 @@ class GoldenStore:
             self.read(folder, accept_format_1=True)
             versions[folder] = self.format_versions(folder)
             if len(versions[folder]) > 1:
-                raise GoldenCorruptError(folder, "mixes golden formats 1 and 2: a format-2 golden partly rewritten as "
-                                         "format 1 (which has no digest) hides an edit; refusing to upgrade it",
+                raise GoldenCorruptError(folder, f"mixes golden formats {' and '.join(map(str, sorted(versions[folder])))}: "
+                                         "a golden partly rewritten in an older format (format 1 has no digest) "
+                                         "hides an edit; refusing to upgrade it",
                                          "restore the folder from version control, or re-bless the test")
             if held_format_2 is not None and 1 in versions[folder]:
                 for kind, path in FileSet(folder, fmt.KINDS).resolve().items():
@@ -313,9 +314,14 @@ class GoldenStore:
                     out.append((folder, "current"))
                     continue
                 run_id = uuid.uuid4().hex
-                tables = {kind: self._upgraded(path, kind, run_id) for kind, path in files.resolve().items()}
+                dropped = fmt.TRACE_FILE in files.resolve() and min(old) < fmt.TRACE_FORMAT
+                # A trace before format 3 grouped its events another way; it cannot be renumbered
+                # without the run, so it is dropped (a re-bless records a new one).
+                tables = {kind: self._upgraded(path, kind, run_id) for kind, path in files.resolve().items()
+                          if kind != fmt.TRACE_FILE or min(old) >= fmt.TRACE_FORMAT}
                 files.write({kind: fmt.parquet_writer(kind, table) for kind, table in tables.items()}, run_id)
-            out.append((folder, f"upgraded from format {', '.join(map(str, old))}"))
+            out.append((folder, f"upgraded from format {', '.join(map(str, old))}"
+                        + (" (its trace was dropped: re-bless the test to record one)" if dropped else "")))
         return out
 
     def _upgraded(self, path: Path, kind: str, run_id: str) -> Any:
@@ -341,7 +347,7 @@ def _run_from(files: dict[str, Path], reads: dict[str, fmt.FileRead]) -> Run:
     metrics = reads[fmt.METRICS_FILE].metrics(files[fmt.METRICS_FILE])
     tensors = fmt.tensors_from_table(files[fmt.STATE_FILE], reads[fmt.STATE_FILE].table)
     trace = (fmt.trace_from_table(files[fmt.TRACE_FILE], reads[fmt.TRACE_FILE].table)
-             if fmt.TRACE_FILE in reads else None)
+             if fmt.TRACE_FILE in reads and reads[fmt.TRACE_FILE].version >= fmt.TRACE_FORMAT else None)
     return Run(metrics=metrics, tensors=tensors, meta=reads[fmt.METRICS_FILE].meta, trace=trace)
 
 

@@ -1,22 +1,32 @@
-"""Per-step trace: checksums of every stage of every optimizer step.
+"""Per-step trace: checksums of every event of every training step, in the order they happen.
 
 "The loss differs at step 37" does not say whether the data, the model, autograd or the
-optimizer changed. A trace records, for each optimizer step, the model inputs (stage
-`data`), the model outputs and the loss (stage `forward`), every gradient (stage
-`backward`) and every parameter and optimizer-state entry after the update (stage
-`update`). Comparing two traces in that order finds the first step and stage where two
-runs part, which names the culprit.
+optimizer changed. A trace records, for each training step, one event per thing that
+happens, each in one stage:
 
-Hooks used: a forward pre-hook and a forward hook on the watched module, an optimizer
-step pre-hook and post-hook, and a wrapper around `torch.Tensor.backward` (to see the
-loss; removed after the test). For closure-based optimizers (L-BFGS) the step pre-hook
-wraps the closure, so each forward/backward evaluation inside one step is recorded in
-call order.
+- `init` (step 0 only): every parameter and buffer of every watched module as it was when
+  `watch` was called, so a changed initialisation is reported as such;
+- `data`: the inputs of one call of a watched module;
+- `forward`: the outputs of that call, or a loss that `backward()` is called on;
+- `backward`: the gradients of the watched parameters right after one `backward()` (each
+  backward is its own event, so a GAN's three backwards per step are three events), and
+  again before an optimizer step for gradients changed since (clipping, unscaling);
+- `update`: one optimizer's parameters and state right after its step.
+
+Events are numbered in call order within the step (the `call` column); a step ends when
+every watched optimizer has stepped since the last one ended (a critic stepped five times
+per generator step is five update events of one step). Comparing two traces event by event
+finds the first event where two runs part, which names the culprit.
+
+Hooks used: forward pre-hooks and forward hooks on each watched module, step pre- and
+post-hooks on each watched optimizer, and a wrapper around `torch.Tensor.backward` (to see
+the loss and the gradients it produced; removed after the test). Closure optimizers (L-BFGS)
+need nothing special: each evaluation's forward and backward are events in call order.
 """
 
 from __future__ import annotations
 
-from typing import Any, Callable, Iterator
+from typing import Any, Callable, Iterator, Mapping
 
 import numpy as np
 
@@ -30,13 +40,20 @@ def _flatten(prefix: str, value: Any) -> Iterator[tuple[str, Any]]:
     return nested_items(prefix, value, checksum.is_tensor)
 
 
+class Watched:
+    """One watched network: a keyword (the name prefix), a module and its optimizer, either may be None."""
+
+    def __init__(self, prefix: str, module: Any, optimizer: Any) -> None:
+        self.prefix, self.module, self.optimizer = prefix, module, optimizer
+
+
 class Tracer:
-    """Hooks a module and an optimizer and records one `TraceEntry` per tensor per stage."""
+    """Hooks watched modules and optimizers and records one `TraceEntry` per tensor per event."""
 
     _active: Tracer | None = None
 
-    def __init__(self, model: Any, optimizer: Any, state_entries: Callable[[Any], Iterator[tuple[str, str, Any]]],
-                 param_names: Callable[[Any], str]) -> None:
+    def __init__(self, watched: list[Watched],
+                 state_entries: Callable[[Any, str, Mapping[int, str]], Iterator[tuple[str, str, Any]]]) -> None:
         import torch
 
         if Tracer._active is not None:
@@ -44,100 +61,162 @@ class Tracer:
         self.entries: list[TraceEntry] = []
         self.step = 0
         self._seq = 0
-        self._calls = 0
-        self._losses = 0
-        self._evals = 0
-        self._model = model
-        self._optimizer = optimizer
+        self._event = 0
+        self._watched = watched
         self._state_entries = state_entries
-        self._param_names = param_names
-        self._handles = [
-            model.register_forward_pre_hook(self._on_input, with_kwargs=True),
-            model.register_forward_hook(self._on_output, with_kwargs=True),
-            optimizer.register_step_pre_hook(self._before_step),
-            optimizer.register_step_post_hook(self._after_step),
-        ]
+        self._names: dict[int, str] = {}
+        self._params: list[Any] = []
+        for w in watched:
+            if w.module is not None:
+                for name, param in w.module.named_parameters():
+                    if id(param) not in self._names:
+                        self._names[id(param)] = w.prefix + name
+                        self._params.append(param)
+        for w in watched:
+            if w.optimizer is not None:
+                for g, group in enumerate(w.optimizer.param_groups):
+                    for p, param in enumerate(group["params"]):
+                        if id(param) not in self._names:
+                            self._names[id(param)] = f"{w.prefix}group{g}.param{p}"
+                            self._params.append(param)
+        self._optimizers = {id(w.optimizer): w for w in watched if w.optimizer is not None}
+        self._stepped: set[int] = set()
+        self._calls: dict[int, int] = {}  # forward calls per module within the step
+        self._losses = 0
+        self._backwards = 0
+        self._grads_seen: dict[int, tuple[int, int]] = {}  # param id -> (id of grad, its version) last recorded
+        self._record_init()
+        self._handles: list[Any] = []
+        for w in watched:
+            if w.module is not None:
+                self._handles += [
+                    w.module.register_forward_pre_hook(self._input_hook(w), with_kwargs=True),
+                    w.module.register_forward_hook(self._output_hook(w), with_kwargs=True),
+                ]
+            if w.optimizer is not None:
+                self._handles += [w.optimizer.register_step_pre_hook(self._before_step),
+                                  w.optimizer.register_step_post_hook(self._after_step)]
         self._original_backward = torch.Tensor.backward
         tracer = self
         original = self._original_backward
 
         def backward(tensor: Any, *args: Any, **kwargs: Any) -> Any:
             tracer._on_loss(tensor)
-            return original(tensor, *args, **kwargs)
+            result = original(tensor, *args, **kwargs)
+            tracer._on_backward()
+            return result
 
         backward.__doc__ = original.__doc__
         torch.Tensor.backward = backward  # type: ignore[method-assign]
         Tracer._active = self
 
     # -- recording -------------------------------------------------------------------
-    def _add(self, stage: str, call: int, name: str, tensor: Any) -> None:
+    def _add(self, stage: str, name: str, tensor: Any) -> None:
         tensor = tensor.detach()
         digest, st, sketch = checksum.describe(tensor, checksum.TRACE_SKETCH)
         self.entries.append(TraceEntry(
-            self.step, stage, self._seq, call, name + self._suffix(call), str(tensor.dtype).replace("torch.", ""),
+            self.step, stage, self._seq, self._event, name, str(tensor.dtype).replace("torch.", ""),
             tuple(int(d) for d in tensor.shape), digest,
             st.min, st.max, st.mean, st.l2, st.nonfinite, sketch,
         ))
         self._seq += 1
 
-    def _suffix(self, index: int) -> str:
+    def _close_event(self, before: int) -> None:
+        """Number the next event, if this one recorded anything."""
+        if self._seq > before:
+            self._event += 1
+
+    @staticmethod
+    def _suffix(index: int) -> str:
         return "" if index == 0 else f"@{index}"
 
-    def _on_input(self, module: Any, args: tuple[Any, ...], kwargs: dict[str, Any]) -> None:
-        for name, t in _flatten("input", list(args)):
-            self._add("data", self._calls, name, t)
-        for name, t in _flatten("input", kwargs):
-            self._add("data", self._calls, name, t)
+    def _record_init(self) -> None:
+        before = self._seq
+        for w in self._watched:
+            if w.module is None:
+                continue
+            for name, param in w.module.named_parameters():
+                self._add("init", w.prefix + name, param)
+            for name, buf in w.module.named_buffers():
+                self._add("init", w.prefix + name, buf)
+        self._close_event(before)
 
-    def _on_output(self, module: Any, args: tuple[Any, ...], kwargs: dict[str, Any], output: Any) -> None:
-        for name, t in _flatten("output", output):
-            self._add("forward", self._calls, name, t)
-        self._calls += 1
+    def _input_hook(self, w: Watched) -> Callable[..., None]:
+        def on_input(module: Any, args: tuple[Any, ...], kwargs: dict[str, Any]) -> None:
+            call = self._calls.get(id(module), 0)
+            before = self._seq
+            for name, t in _flatten(f"{w.prefix}input", list(args)):
+                self._add("data", name + self._suffix(call), t)
+            for name, t in _flatten(f"{w.prefix}input", kwargs):
+                self._add("data", name + self._suffix(call), t)
+            self._close_event(before)
+        return on_input
+
+    def _output_hook(self, w: Watched) -> Callable[..., None]:
+        def on_output(module: Any, args: tuple[Any, ...], kwargs: dict[str, Any], output: Any) -> None:
+            call = self._calls.get(id(module), 0)
+            self._calls[id(module)] = call + 1
+            before = self._seq
+            for name, t in _flatten(f"{w.prefix}output", output):
+                self._add("forward", name + self._suffix(call), t)
+            self._close_event(before)
+        return on_output
 
     def _on_loss(self, tensor: Any) -> None:
-        self._add("forward", self._losses, "loss", tensor)
+        before = self._seq
+        self._add("forward", "loss" + self._suffix(self._losses), tensor)
         self._losses += 1
+        self._close_event(before)
 
-    def _record_grads(self) -> None:
-        for group in self._optimizer.param_groups:
-            for param in group["params"]:
-                if param.grad is not None:
-                    self._add("backward", self._evals, f"grad {self._param_names(param)}", param.grad)
-        self._evals += 1
+    def _on_backward(self) -> None:
+        before = self._seq
+        suffix = self._suffix(self._backwards)
+        for param in self._params:
+            grad = param.grad
+            if grad is not None:
+                self._add("backward", f"grad {self._names[id(param)]}{suffix}", grad)
+                self._grads_seen[id(param)] = (id(grad), grad._version)
+        self._backwards += 1
+        self._close_event(before)
 
-    def _before_step(self, optimizer: Any, args: tuple[Any, ...], kwargs: dict[str, Any]) -> Any:
-        # torch passes the bound call's positional arguments, the optimizer itself first.
-        closure = kwargs.get("closure", args[1] if len(args) > 1 else None)
-        if closure is None:
-            self._record_grads()
-            return None
-        tracer = self
-
-        def traced_closure() -> Any:
-            result = closure()
-            tracer._record_grads()
-            return result
-
-        if "closure" in kwargs:
-            return args, {**kwargs, "closure": traced_closure}
-        return (args[0], traced_closure, *args[2:]), kwargs
-
-    def _after_step(self, optimizer: Any, args: tuple[Any, ...], kwargs: dict[str, Any]) -> None:
+    def _before_step(self, optimizer: Any, args: tuple[Any, ...], kwargs: dict[str, Any]) -> None:
+        # Gradients changed since the backward that made them (clipped, unscaled, or set by
+        # torch.autograd.grad): recorded again, as they go into the step.
+        before = self._seq
         for group in optimizer.param_groups:
             for param in group["params"]:
-                self._add("update", 0, self._param_names(param), param)
-        for name, kind, value in self._state_entries(optimizer):
+                grad = param.grad
+                if grad is not None and self._grads_seen.get(id(param)) != (id(grad), grad._version):
+                    self._add("backward", f"grad {self._names.get(id(param), 'unnamed')}@step", grad)
+                    self._grads_seen[id(param)] = (id(grad), grad._version)
+        self._close_event(before)
+
+    def _after_step(self, optimizer: Any, args: tuple[Any, ...], kwargs: dict[str, Any]) -> None:
+        import torch
+
+        before = self._seq
+        for group in optimizer.param_groups:
+            for param in group["params"]:
+                self._add("update", self._names.get(id(param), "unnamed"), param)
+        # Parameter names already carry their module's keyword: no second prefix.
+        for name, kind, value in self._state_entries(optimizer, "", self._names):
             if kind == "hyperparameter":
                 continue
             if hasattr(value, "detach"):
-                self._add("update", 0, f"state {name}", value)
+                self._add("update", f"state {name}", value)
             else:
-                import torch
+                self._add("update", f"state {name}", torch.as_tensor(np.asarray(value)))
+        self._close_event(before)
+        self._stepped.add(id(optimizer))
+        if self._stepped >= set(self._optimizers):
+            self.step += 1
+            self._seq = self._event = self._losses = self._backwards = 0
+            self._calls.clear()
+            self._stepped.clear()
 
-                self._add("update", 0, f"state {name}", torch.as_tensor(np.asarray(value)))
-        self.step += 1
-        self._seq = 0
-        self._calls = self._losses = self._evals = 0
+    def param_name(self, param: Any) -> str | None:
+        """The trace's name of a watched parameter (keyword prefix and `named_parameters()` name)."""
+        return self._names.get(id(param))
 
     def close(self) -> None:
         """Remove every hook and put `torch.Tensor.backward` back. Safe to call twice."""
