@@ -260,8 +260,11 @@ def _float64_chunks(data: Any) -> Iterator[tuple[int, np.ndarray, tuple[float, f
 # random cyclic shift of the buckets and a random sign, so no period in the data lines up.
 
 SKETCH_BLOCK = 1 << 16
-#: Sketch sizes: state entries too large to keep their values, and every trace entry.
-STATE_SKETCH = 256
+#: Sketch sizes: state entries too large to keep their values, and every trace entry. 1024
+#: buckets (golden format 3; 256 before) keep a few moved elements apart, each alone in its
+#: bucket, so the bucket differences estimate the largest elementwise difference (see
+#: `tolerance.sketch_estimate`).
+STATE_SKETCH = 1024
 TRACE_SKETCH = 16
 SKETCH_SEED = np.uint64(0x7472_6169_6E67_7561)  # "trainguar" in ASCII, an arbitrary fixed seed
 _M1, _M2, _GOLDEN = np.uint64(0xBF58476D1CE4E5B9), np.uint64(0x94D049BB133111EB), np.uint64(0x9E3779B97F4A7C15)

@@ -16,7 +16,7 @@ from .attribution import TraceDiff, compare_traces
 from .golden_format import TRACE_FORMAT
 from .meta import GoldenMeta
 from .records import MetricSeries, Run, TensorRecord
-from .tolerance import Policy, Tolerance, bitwise_equal, is_exact_dtype, judge, within
+from .tolerance import Policy, SketchEstimate, Tolerance, bitwise_equal, is_exact_dtype, judge, within
 from .verdicts import CHANGED, CLOSE, IDENTICAL, worst
 
 
@@ -58,6 +58,7 @@ class TensorDiff:
     scale: float = math.nan  # largest finite |golden| among the compared numbers: max_abs / scale is scale-free
     judged_by: str = ""  # when not the policy's pair: "float16's default rtol=..., atol=..." or "exact (int64)"
     structural: bool = False  # recorded by one side only: reported as a structure change, not a value
+    estimate: SketchEstimate | None = None  # large tensors: the estimated largest elementwise difference
 
 
 #: What a structure change is about (`StructureChange.what`).
@@ -215,6 +216,13 @@ def compare_tensor(name: str, golden: TensorRecord | None, new: TensorRecord | N
         diff.max_rel = float(_rel(absd[finite], g[finite]).max())
         diff.scale = float(np.abs(g[finite]).max())
     diff.elements_off = j.elements_off
+    if j.estimate is not None:
+        # Only sketches were stored: the statistics' differences say nothing about single elements
+        # (a min that did not move hides a weight that did), so the sizes shown are the estimate's.
+        diff.estimate = j.estimate
+        diff.max_abs = j.estimate.largest
+        diff.max_rel = math.nan
+        diff.scale = max(abs(golden.min), abs(golden.max)) if math.isfinite(golden.min + golden.max) else math.nan
     if diff.basis == "values" and g.size == 1:
         diff.golden_value, diff.new_value = float(g[0]), float(n[0])
     nonfinite_new = int(np.sum(~np.isfinite(n) & np.isfinite(g)))

@@ -144,6 +144,11 @@ def describe_comparison(cmp: Comparison) -> str:
         if t.golden_value is not None:
             reasons.append(f"value {fmt(t.golden_value)} -> {fmt(t.new_value)}")
         sizes = [short(t.max_abs), short(t.max_rel)] if t.basis else ["-", "-"]
+        if t.estimate is not None:
+            e = t.estimate
+            sizes = [f"~{short(e.largest)} +-{short(e.bound)} (est.)", "-"]
+            reasons.append(f"est. largest elementwise diff {short(e.largest)} +- {short(e.bound)} "
+                           f"(any element allowed {short(e.allowed)})")
         if t.sketch_distance is not None:
             reasons.append(f"est. L2 distance {short(t.sketch_distance)} (allowed {short(t.sketch_allowed or 0.0)})")
         if t.judged_by:

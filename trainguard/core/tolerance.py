@@ -203,6 +203,60 @@ def norm_allowed(numel: int, golden_l2: float, tol: Tolerance) -> float:
     return tol.atol * math.sqrt(max(numel, 0)) + tol.rtol * (golden_l2 if math.isfinite(golden_l2) else 0.0)
 
 
+#: Share of the largest bucket differences left out when the bucket noise is measured, so that
+#: a few moved elements (up to 2 % of the buckets: 20 of 1024) do not count as noise.
+SKETCH_TRIM = 0.02
+#: Bucket noise allowed before a bucket counts as holding a moved element: this many standard
+#: deviations of the other buckets. Chosen here, no source: with 1024 Gaussian buckets the chance
+#: that any exceeds 6 sigma is about 1024 x 2e-9 = 2e-6.
+SKETCH_Z = 6.0
+#: Sketches with fewer buckets (a trace entry's 16) give no elementwise estimate: too few
+#: buckets to keep moved elements apart or to measure the noise.
+MIN_ESTIMATE_BUCKETS = 256
+
+
+@dataclass(frozen=True)
+class SketchEstimate:
+    """The largest elementwise difference as a count-sketch estimates it, with its error bound.
+
+    Bucket j of the difference of two sketches is D_j = sum of s_i d_i over the positions i
+    hashed to j (count-sketch; Charikar, Chen & Farach-Colton 2002). A position that moved far
+    more than its bucket-mates sits alone in its bucket with high probability, so |D_j| = |d_i|
+    up to the signed sum of the others, whose size `bound` estimates (SKETCH_Z times the RMS of
+    the buckets left after the largest SKETCH_TRIM share is set aside). `largest` is max_j |D_j|: the estimate of max_i |d_i| when the
+    moved elements are few, within +- `bound`.
+    """
+
+    largest: float
+    bound: float
+    allowed: float  # atol + rtol * the largest |golden| value (from the statistics): the loosest element's allowance
+
+    @property
+    def over(self) -> bool:
+        """Some element moved by more than any element is allowed, beyond the noise: the rule is broken."""
+        return self.largest - self.bound > self.allowed
+
+
+def sketch_estimate(golden_sketch: np.ndarray, new_sketch: np.ndarray, golden_min: float, golden_max: float,
+                    tol: Tolerance) -> SketchEstimate:
+    """Estimate max |new - golden| over the elements from two count-sketches (see `SketchEstimate`).
+
+    The allowance is that of the element with the largest magnitude, since the sketch cannot say
+    which element moved: a sparse change is called a change only when it exceeds every element's
+    allowance (no false alarm from a within-tolerance move of a large value); a move between an
+    element's own allowance and the largest one's is let through (README states this bound).
+    """
+    d = np.abs(np.asarray(new_sketch, dtype=np.float64) - np.asarray(golden_sketch, dtype=np.float64))
+    finite = np.sort(d[np.isfinite(d)])
+    if not finite.size:
+        return SketchEstimate(math.nan, math.nan, math.nan)
+    largest = float(finite[-1])
+    rest = finite[: finite.size - max(1, int(SKETCH_TRIM * finite.size))]
+    bound = SKETCH_Z * float(np.sqrt(np.mean(rest * rest))) if rest.size else 0.0
+    scale = max(abs(golden_min), abs(golden_max)) if math.isfinite(golden_min) and math.isfinite(golden_max) else 0.0
+    return SketchEstimate(largest, bound, tol.atol + tol.rtol * scale)
+
+
 @dataclass
 class Judgement:
     """The verdict on one described tensor (state or trace entry) and what it was based on."""
@@ -215,12 +269,16 @@ class Judgement:
     ok: np.ndarray | None = None  # elementwise verdict over them
     sketch_distance: float | None = None  # estimated L2 distance, when only sketches were stored
     sketch_allowed: float | None = None
+    estimate: SketchEstimate | None = None  # estimated largest elementwise difference, from the sketches
 
     @property
     def elements_off(self) -> int:
-        """Compared numbers outside tolerance (a sketch distance over its allowance counts as one)."""
+        """Compared numbers outside tolerance (a sketch distance over its allowance, and an estimated
+        elementwise difference over every element's allowance, count as one each)."""
         off = 0 if self.ok is None else int(self.ok.size - np.count_nonzero(self.ok))
         if self.sketch_distance is not None and not self.sketch_distance <= (self.sketch_allowed or 0.0):
+            off += 1
+        if self.estimate is not None and self.estimate.over:
             off += 1
         return off
 
@@ -232,7 +290,9 @@ def judge(golden: Summarized, new: Summarized, tol: Tolerance, exact: bool = Fal
     compared exactly. 1. dtype or shape differ: changed. 2. same SHA-256: identical. 3. the stored values when
     both sides kept them, else the statistics (min, max, mean, L2 norm, non-finite count),
     each under the elementwise rule (bits only with `exact`); where both kept a count-sketch,
-    also the estimated L2 distance against `norm_allowed`. Any number outside: changed.
+    also the estimated L2 distance against `norm_allowed` (dense drift) and the estimated largest
+    elementwise difference against every element's allowance (a few moved elements, see
+    `sketch_estimate`). Any number outside: changed.
     """
     reasons = []
     tol = tol.for_dtype(golden.dtype)
@@ -258,6 +318,8 @@ def judge(golden: Summarized, new: Summarized, tol: Tolerance, exact: bool = Fal
         out.basis = "statistics+sketch"
         out.sketch_distance = sketch_distance(golden.sketch, new.sketch)
         out.sketch_allowed = norm_allowed(golden.numel, golden.l2, tol)
+        if golden.sketch.size >= MIN_ESTIMATE_BUCKETS:
+            out.estimate = sketch_estimate(golden.sketch, new.sketch, golden.min, golden.max, tol)
     if exact or out.elements_off:
         out.verdict = CHANGED
     return out
