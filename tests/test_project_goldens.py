@@ -27,4 +27,4 @@ def test_project_goldens_are_identical_in_portable_mode(imitated):
     done = subprocess.run([sys.executable, "-m", "pytest", "guarded", "-q", "-p", "no:xdist"], cwd=ROOT, env=env,
                           capture_output=True, text=True, timeout=300)
     assert done.returncode == 0, done.stdout[-3000:] + done.stderr[-2000:]
-    assert "guarded tests checked: 7 (7 identical)" in done.stdout, done.stdout[-3000:]
+    assert "guarded tests checked: 9 (9 identical)" in done.stdout, done.stdout[-3000:]

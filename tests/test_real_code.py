@@ -285,3 +285,86 @@ def test_traces_with_two_networks_round_trip_through_a_golden(tmp_path, plant):
     back = golden.read_run(tmp_path / "g")
     assert [(e.step, e.call, e.stage, e.name, e.sha256) for e in back.trace] == \
         [(e.step, e.call, e.stage, e.name, e.sha256) for e in run.trace]
+
+
+# -- a model above the stored-values limit: a tram depot's timetable network -----------------------
+
+
+def tram_depot(plant: str = "") -> tuple[Trajectory, torch.nn.Module]:
+    """Linear(320, 256) holds 81,920 weights, more than trainguard_max_values (65,536): only a sketch is kept."""
+    torch.manual_seed(8)
+    model = torch.nn.Sequential(torch.nn.Linear(320, 256), torch.nn.Tanh(), torch.nn.Linear(256, 4))
+    opt = torch.optim.Adam(model.parameters(), lr=1e-3)
+    traj = Trajectory()
+    x = torch.linspace(-1, 1, 16 * 320).reshape(16, 320)
+    y = torch.linspace(0, 1, 64).reshape(16, 4)
+    for step in range(3):
+        opt.zero_grad()
+        loss = F.mse_loss(model(x), y)
+        loss.backward()
+        opt.step()
+        traj.log(step, loss=loss)
+    if plant == "patched":  # the planted bug: a checkpoint patch that rewrote three weights
+        with torch.no_grad():
+            flat = model[0].weight.view(-1)
+            flat[[7, 40_000, 81_000]] += torch.tensor([3e-5, -4e-5, 5e-5])
+    traj.state(model, optimizer=opt)
+    return traj, model
+
+
+def test_a_few_weights_patched_in_a_large_layer_are_a_change():
+    (golden, gm), (new, nm) = tram_depot(), tram_depot("patched")
+    g, n = golden.to_run(), new.to_run()
+    assert g.tensors["0.weight"].values is None  # over the limit: sketch only
+    cmp = compare(g, n, Policy())
+    # ground truth: the elementwise rule on the two layers, with NumPy
+    import numpy as np
+
+    from trainguard.core.tolerance import Tolerance, within
+
+    a, b = gm[0].weight.detach().double().numpy().ravel(), nm[0].weight.detach().double().numpy().ravel()
+    truly_off = int((~within(a, b, Tolerance())).sum())
+    assert truly_off == 3
+    d = next(t for t in cmp.tensors if t.name == "0.weight")
+    assert cmp.outcome == d.verdict == CHANGED
+    assert d.estimate.largest == pytest.approx(float(np.abs(a - b).max()), abs=d.estimate.bound + 1e-12)
+    assert "(est.)" in describe_comparison(cmp)
+    unchanged = compare(g, tram_depot()[0].to_run(), Policy())
+    assert unchanged.outcome == IDENTICAL
+
+
+# -- a model returning a tuple and a dict: both kinds of outputs are traced by name -----------------
+
+
+def test_tuple_and_dict_outputs_are_traced_by_name_and_an_output_change_is_forward():
+    def run(scale: float):
+        torch.manual_seed(4)
+
+        class Oven(torch.nn.Module):
+            def __init__(self) -> None:
+                super().__init__()
+                self.fc = torch.nn.Linear(3, 2)
+
+            def forward(self, x):
+                h = self.fc(x)
+                return h, {"crust": h.sum(1) * scale, "crumb": h.mean(1)}
+
+        model = Oven()
+        opt = torch.optim.SGD(model.parameters(), lr=0.1)
+        traj = Trajectory()
+        traj.watch(model, opt)
+        opt.zero_grad()
+        h, parts = model(torch.ones(4, 3))
+        (h.pow(2).mean() + parts["crumb"].mean()).backward()
+        opt.step()
+        traj.close()
+        traj.state(model, optimizer=opt)
+        return traj.to_run()
+
+    golden, new = run(1.0), run(2.0)  # the "crust" output doubled; nothing reads it in training
+    names = {e.name for e in golden.trace if e.stage == "forward"}
+    assert {"output.0", "output.1.crust", "output.1.crumb", "loss"} <= names
+    cmp = compare(golden, new, Policy())
+    assert cmp.outcome == IDENTICAL  # the weights and loss do not depend on "crust"
+    fc = cmp.trace.first_change
+    assert (fc.step, fc.stage, fc.names) == (0, "forward", ["output.1.crust"])
