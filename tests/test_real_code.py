@@ -223,8 +223,8 @@ def greenhouse(opt_class=torch.optim.SGD, outputs: str = "all", norm: bool = Tru
     return traj
 
 
-def _row(golden, new, policy=Policy()) -> tuple[object, dict]:
-    cmp = compare(golden, new, policy)
+def _row(golden, new, policy: Policy | None = None) -> tuple[object, dict]:
+    cmp = compare(golden, new, policy or Policy())
     result = GuardResult("test_greenhouse.py::test_climate", "golden/x", cmp.outcome, comparison=cmp)
     return cmp, row_for(result)
 

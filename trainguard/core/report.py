@@ -84,11 +84,11 @@ def describe_comparison(cmp: Comparison) -> str:
                 f"tolerance: {p.describe()}")
     out.append(head)
     if cmp.structure:
-        notes = [c for c in cmp.structure if c.verdict != CHANGED]
+        note_changes = [c for c in cmp.structure if c.verdict != CHANGED]
         out.append("")
         out.append("structure (names on one side only; their values are not compared):")
         for c in cmp.structure[:MAX_ROWS]:
-            note = " (a note: optimizer bookkeeping no update reads; the numbers decide)" if c in notes else ""
+            note = " (a note: optimizer bookkeeping no update reads; the numbers decide)" if c in note_changes else ""
             out.append(f"  {untrusted(c.describe())}{note}")
         if len(cmp.structure) > MAX_ROWS:
             out.append(f"  ... and {len(cmp.structure) - MAX_ROWS} more")
