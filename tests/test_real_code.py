@@ -368,3 +368,23 @@ def test_tuple_and_dict_outputs_are_traced_by_name_and_an_output_change_is_forwa
     assert cmp.outcome == IDENTICAL  # the weights and loss do not depend on "crust"
     fc = cmp.trace.first_change
     assert (fc.step, fc.stage, fc.names) == (0, "forward", ["output.1.crust"])
+
+
+def test_watch_usage_errors_name_the_keyword_and_the_fix():
+    from trainguard.core.errors import UsageError
+
+    g, d = Crust(), Critic()
+    opt = torch.optim.SGD(g.parameters(), lr=0.1)
+    traj = Trajectory()
+    with pytest.raises(UsageError, match=r"trajectory.watch\(critic=...\): give a module or a \(module, optimizer\) pair"):
+        traj.watch(generator=(g, opt), critic="d")
+    with pytest.raises(UsageError, match=r"trajectory.watch\(critic=...\): optimizer must be a torch.optim.Optimizer"):
+        traj.watch(critic=(d, "sgd"))
+    with pytest.raises(UsageError, match="no optimizer given; a training step ends when the watched optimizers"):
+        traj.watch(critic=d)
+    with pytest.raises(UsageError, match="not both"):
+        traj.watch(g, opt, critic=d)
+    with pytest.raises(UsageError, match="nothing to watch"):
+        traj.watch()
+    traj.watch(generator=(g, opt), critic=d)  # a module alone beside a pair is fine
+    traj.close()
