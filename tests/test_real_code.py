@@ -251,6 +251,9 @@ def test_removed_outputs_are_removed_not_diverged():
     assert [n for _, _, n in cmp.trace.removed] == ["output.cache.0", "output.cache.1"]
     assert "first divergence" not in row["divergence"]
     assert "2 trace entries removed (first at step 0, stage forward): output.cache.0, output.cache.1" in row["divergence"]
+    text = describe_comparison(cmp)  # under the structure heading, by name
+    assert "structure (names on one side only" in text
+    assert "trace entry removed: output.cache.0 (from step 0, stage forward)" in text
 
 
 def test_a_removed_buffer_is_a_structure_change_named_in_the_row():

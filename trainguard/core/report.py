@@ -83,15 +83,18 @@ def describe_comparison(cmp: Comparison) -> str:
         head = (f"outcome: {cmp.outcome} (structure: {word}; numbers: {cmp.numbers})   "
                 f"tolerance: {p.describe()}")
     out.append(head)
-    if cmp.structure:
+    traced = ([f"trace entry {word}: {name} (from step {step}, stage {stage})"
+               for word, items in (("removed", cmp.trace.removed), ("added", cmp.trace.added))
+               for step, stage, name in items] if cmp.trace is not None else [])
+    if cmp.structure or traced:
         note_changes = [c for c in cmp.structure if c.verdict != CHANGED]
+        lines = [c.describe() + (" (a note: optimizer bookkeeping no update reads; the numbers decide)"
+                                 if c in note_changes else "") for c in cmp.structure] + traced
         out.append("")
         out.append("structure (names on one side only; their values are not compared):")
-        for c in cmp.structure[:MAX_ROWS]:
-            note = " (a note: optimizer bookkeeping no update reads; the numbers decide)" if c in note_changes else ""
-            out.append(f"  {untrusted(c.describe())}{note}")
-        if len(cmp.structure) > MAX_ROWS:
-            out.append(f"  ... and {len(cmp.structure) - MAX_ROWS} more")
+        out.extend(f"  {untrusted(line)}" for line in lines[:MAX_ROWS])
+        if len(lines) > MAX_ROWS:
+            out.append(f"  ... and {len(lines) - MAX_ROWS} more")
     if cmp.trace is not None:
         out.append(cmp.trace.summary())
     elif cmp.trace_note:
