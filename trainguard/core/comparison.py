@@ -16,7 +16,7 @@ from .attribution import TraceDiff, compare_traces
 from .golden_format import TRACE_FORMAT
 from .meta import GoldenMeta
 from .records import MetricSeries, Run, TensorRecord
-from .tolerance import Policy, SketchEstimate, Tolerance, bitwise_equal, is_exact_dtype, judge, within
+from .tolerance import Policy, SketchEstimate, Tolerance, bitwise_equal, judge, within
 from .verdicts import CHANGED, CLOSE, IDENTICAL, worst
 
 
@@ -197,32 +197,30 @@ def compare_tensor(name: str, golden: TensorRecord | None, new: TensorRecord | N
         present = golden or new
         assert present is not None
         reason = "not recorded by the new run" if new is None else "not in the golden"
-        return TensorDiff(name, present.kind, CHANGED, [reason], numel=present.numel, structural=True)
+        # A param-group key that comes or goes is optimizer bookkeeping: a note under a tolerance
+        # (see `_structure`), a change under exact=True; any other entry on one side only is a change.
+        verdict = CLOSE if present.kind == "hyperparameter" and not policy.exact else CHANGED
+        return TensorDiff(name, present.kind, verdict, [reason], numel=present.numel, structural=True)
     j = judge(golden, new, policy.default, exact=policy.exact)
     diff = TensorDiff(name, golden.kind, j.verdict, j.reasons, basis=j.basis, numel=golden.numel,
-                      sketch_distance=j.sketch_distance, sketch_allowed=j.sketch_allowed)
-    if not policy.exact and is_exact_dtype(golden.dtype):
-        diff.judged_by = f"exact ({golden.dtype}: integers have no rounding)"
-    elif not policy.exact and (own := policy.default.for_dtype(golden.dtype)) != policy.default:
-        diff.judged_by = f"{golden.dtype}'s default {own.describe()}"
+                      sketch_distance=j.sketch_distance, sketch_allowed=j.sketch_allowed, judged_by=j.judged_by)
     if j.golden is None or j.new is None:  # bits or structure decided
         return diff
     g, n = j.golden, j.new
-    with np.errstate(invalid="ignore", over="ignore"):
-        absd = np.abs(n - g)
-    finite = np.isfinite(absd)
-    if finite.any():
-        diff.max_abs = float(absd[finite].max())
-        diff.max_rel = float(_rel(absd[finite], g[finite]).max())
-        diff.scale = float(np.abs(g[finite]).max())
     diff.elements_off = j.elements_off
     if j.estimate is not None:
         # Only sketches were stored: the statistics' differences say nothing about single elements
         # (a min that did not move hides a weight that did), so the sizes shown are the estimate's.
         diff.estimate = j.estimate
-        diff.max_abs = j.estimate.largest
-        diff.max_rel = math.nan
-        diff.scale = max(abs(golden.min), abs(golden.max)) if math.isfinite(golden.min + golden.max) else math.nan
+        diff.max_abs, diff.max_rel, diff.scale = j.estimate.largest, math.nan, j.estimate.scale
+    else:
+        with np.errstate(invalid="ignore", over="ignore"):
+            absd = np.abs(n - g)
+        finite = np.isfinite(absd)
+        if finite.any():
+            diff.max_abs = float(absd[finite].max())
+            diff.max_rel = float(_rel(absd[finite], g[finite]).max())
+            diff.scale = float(np.abs(g[finite]).max())
     if diff.basis == "values" and g.size == 1:
         diff.golden_value, diff.new_value = float(g[0]), float(n[0])
     nonfinite_new = int(np.sum(~np.isfinite(n) & np.isfinite(g)))
@@ -266,7 +264,7 @@ def compare(golden: Run, new: Run, policy: Policy) -> Comparison:
         compare_tensor(name, golden.tensors.get(name), new.tensors.get(name), policy)
         for name in sorted(set(golden.tensors) | set(new.tensors))
     ]
-    structure = _structure(golden, new, metrics, tensors, policy)
+    structure = _structure(golden, new, metrics, tensors)
     numbers = worst([m.verdict for m in metrics if not m.structural] + [t.verdict for t in tensors if not t.structural])
     outcome = worst([numbers] + [c.verdict for c in structure])
     trace, note = None, ""
@@ -281,13 +279,13 @@ def compare(golden: Run, new: Run, policy: Policy) -> Comparison:
                       trace_note=note, structure=structure, numbers=numbers)
 
 
-def _structure(golden: Run, new: Run, metrics: list[MetricDiff], tensors: list[TensorDiff],
-               policy: Policy) -> list[StructureChange]:
+def _structure(golden: Run, new: Run, metrics: list[MetricDiff], tensors: list[TensorDiff]) -> list[StructureChange]:
     """Names on one side only, as structure changes; an entry whose bits reappear under one other name is renamed.
 
     A param-group key (a hyperparameter entry) that comes or goes is a note under a tolerance:
     optimizer libraries add bookkeeping keys (a step counter, an lr snapshot) that no update
-    reads, and whether the numbers moved is judged on the numbers. Under `exact=True` it is a change.
+    reads, and whether the numbers moved is judged on the numbers. Under `exact=True` it is a change
+    (`compare_tensor` gives the verdict; it is carried over here).
     """
     out = [StructureChange(METRIC, "removed" if new.metrics.get(m.name) is None else "added", m.name)
            for m in metrics if m.structural]
@@ -312,9 +310,7 @@ def _structure(golden: Run, new: Run, metrics: list[MetricDiff], tensors: list[T
         if t.name in renamed_to:
             out.append(StructureChange(ENTRY, "renamed", t.name, t.kind, new_name=renamed_to[t.name]))
         elif t.kind == "hyperparameter":
-            change = "removed" if t in removed else "added"
-            out.append(StructureChange(GROUP_KEY, change, t.name, verdict=CHANGED if policy.exact else CLOSE))
-            t.verdict = CHANGED if policy.exact else CLOSE
+            out.append(StructureChange(GROUP_KEY, "removed" if t in removed else "added", t.name, verdict=t.verdict))
         else:
             out.append(StructureChange(ENTRY, "removed" if t in removed else "added", t.name, t.kind))
     return out

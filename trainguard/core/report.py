@@ -87,9 +87,8 @@ def describe_comparison(cmp: Comparison) -> str:
                for word, items in (("removed", cmp.trace.removed), ("added", cmp.trace.added))
                for step, stage, name in items] if cmp.trace is not None else [])
     if cmp.structure or traced:
-        note_changes = [c for c in cmp.structure if c.verdict != CHANGED]
         lines = [c.describe() + (" (a note: optimizer bookkeeping no update reads; the numbers decide)"
-                                 if c in note_changes else "") for c in cmp.structure] + traced
+                                 if c.verdict != CHANGED else "") for c in cmp.structure] + traced
         out.append("")
         out.append("structure (names on one side only; their values are not compared):")
         out.extend(f"  {untrusted(line)}" for line in lines[:MAX_ROWS])
@@ -300,7 +299,7 @@ def first_divergence(cmp: Comparison | None) -> str:
     numbers = _numbers_divergence(cmp)
     if cmp.structure:
         reason = structure_reason(cmp.structure)
-        if all(c.verdict != CHANGED for c in cmp.structure):
+        if cmp.structure_verdict != CHANGED:
             reason = "note: " + reason
         return reason + (f"; {numbers}" if numbers else f"; numbers {cmp.numbers}")
     return numbers

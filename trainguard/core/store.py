@@ -314,11 +314,12 @@ class GoldenStore:
                     out.append((folder, "current"))
                     continue
                 run_id = uuid.uuid4().hex
-                dropped = fmt.TRACE_FILE in files.resolve() and min(old) < fmt.TRACE_FORMAT
+                present = files.resolve()
                 # A trace before format 3 grouped its events another way; it cannot be renumbered
                 # without the run, so it is dropped (a re-bless records a new one).
-                tables = {kind: self._upgraded(path, kind, run_id) for kind, path in files.resolve().items()
-                          if kind != fmt.TRACE_FILE or min(old) >= fmt.TRACE_FORMAT}
+                dropped = fmt.TRACE_FILE in present and min(old) < fmt.TRACE_FORMAT
+                tables = {kind: self._upgraded(path, kind, run_id) for kind, path in present.items()
+                          if not (dropped and kind == fmt.TRACE_FILE)}
                 files.write({kind: fmt.parquet_writer(kind, table) for kind, table in tables.items()}, run_id)
             out.append((folder, f"upgraded from format {', '.join(map(str, old))}"
                         + (" (its trace was dropped: re-bless the test to record one)" if dropped else "")))

@@ -223,13 +223,14 @@ class SketchEstimate:
     hashed to j (count-sketch; Charikar, Chen & Farach-Colton 2002). A position that moved far
     more than its bucket-mates sits alone in its bucket with high probability, so |D_j| = |d_i|
     up to the signed sum of the others, whose size `bound` estimates (SKETCH_Z times the RMS of
-    the buckets left after the largest SKETCH_TRIM share is set aside). `largest` is max_j |D_j|: the estimate of max_i |d_i| when the
-    moved elements are few, within +- `bound`.
+    the buckets left after the largest SKETCH_TRIM share is set aside). `largest` is max_j |D_j|:
+    the estimate of max_i |d_i| when the moved elements are few, within +- `bound`.
     """
 
     largest: float
     bound: float
-    allowed: float  # atol + rtol * the largest |golden| value (from the statistics): the loosest element's allowance
+    scale: float  # the largest |golden| value (from the statistics)
+    allowed: float  # atol + rtol * scale: the loosest element's allowance
 
     @property
     def over(self) -> bool:
@@ -249,12 +250,12 @@ def sketch_estimate(golden_sketch: np.ndarray, new_sketch: np.ndarray, golden_mi
     d = np.abs(np.asarray(new_sketch, dtype=np.float64) - np.asarray(golden_sketch, dtype=np.float64))
     finite = np.sort(d[np.isfinite(d)])
     if not finite.size:
-        return SketchEstimate(math.nan, math.nan, math.nan)
+        return SketchEstimate(math.nan, math.nan, math.nan, math.nan)
     largest = float(finite[-1])
     rest = finite[: finite.size - max(1, int(SKETCH_TRIM * finite.size))]
     bound = SKETCH_Z * float(np.sqrt(np.mean(rest * rest))) if rest.size else 0.0
     scale = max(abs(golden_min), abs(golden_max)) if math.isfinite(golden_min) and math.isfinite(golden_max) else 0.0
-    return SketchEstimate(largest, bound, tol.atol + tol.rtol * scale)
+    return SketchEstimate(largest, bound, scale, tol.atol + tol.rtol * scale)
 
 
 @dataclass
@@ -270,6 +271,7 @@ class Judgement:
     sketch_distance: float | None = None  # estimated L2 distance, when only sketches were stored
     sketch_allowed: float | None = None
     estimate: SketchEstimate | None = None  # estimated largest elementwise difference, from the sketches
+    judged_by: str = ""  # when not the given pair: "float16's default rtol=..., atol=..." or "exact (int64 ...)"
 
     @property
     def elements_off(self) -> int:
@@ -295,17 +297,20 @@ def judge(golden: Summarized, new: Summarized, tol: Tolerance, exact: bool = Fal
     `sketch_estimate`). Any number outside: changed.
     """
     reasons = []
-    tol = tol.for_dtype(golden.dtype)
-    exact = exact or is_exact_dtype(golden.dtype)
+    judged_by = ""
+    if not exact and is_exact_dtype(golden.dtype):
+        judged_by, exact = f"exact ({golden.dtype}: integers have no rounding)", True
+    elif not exact and (own := tol.for_dtype(golden.dtype)) != tol:
+        judged_by, tol = f"{golden.dtype}'s default {own.describe()}", own
     if golden.dtype != new.dtype:
         reasons.append(f"dtype {golden.dtype} -> {new.dtype}")
     if golden.shape != new.shape:
         reasons.append(f"shape {list(golden.shape)} -> {list(new.shape)}")
     if reasons:
-        return Judgement(CHANGED, reasons)
+        return Judgement(CHANGED, reasons, judged_by=judged_by)
     if golden.sha256 == new.sha256:
-        return Judgement(IDENTICAL)
-    out = Judgement(CLOSE, ["checksum"])
+        return Judgement(IDENTICAL, judged_by=judged_by)
+    out = Judgement(CLOSE, ["checksum"], judged_by=judged_by)
     g_values, n_values = getattr(golden, "values", None), getattr(new, "values", None)
     if g_values is not None and n_values is not None and g_values.shape == n_values.shape:
         out.golden, out.new, out.basis = g_values, n_values, "values"
