@@ -144,6 +144,21 @@ def test_three_backwards_in_a_step_are_three_events():
     assert any(n.startswith("grad generator") for c, n in backward if c == events[2])
 
 
+def watched_fit(model: torch.nn.Module, opt: torch.optim.Optimizer, loss_of, steps: int = 3) -> Trajectory:
+    """A plain watched loop of `steps` steps on a fixed batch (`loss_of()` runs the model), then the state."""
+    traj = Trajectory()
+    traj.watch(model, opt)
+    for step in range(steps):
+        opt.zero_grad()
+        loss = loss_of()
+        loss.backward()
+        opt.step()
+        traj.log(step, loss=loss)
+    traj.close()
+    traj.state(model, optimizer=opt)
+    return traj
+
+
 # -- initialisation: a kiln controller with a custom init --------------------------------------------
 
 
@@ -153,19 +168,8 @@ def kiln(plant: str = "") -> Trajectory:
     if plant != "no_init":
         torch.nn.init.orthogonal_(model[0].weight, gain=0.5)  # the custom initialisation
         torch.nn.init.zeros_(model[0].bias)
-    opt = torch.optim.SGD(model.parameters(), lr=0.05)
-    traj = Trajectory()
-    traj.watch(model, opt)
     temps = torch.linspace(-1, 1, 30).reshape(10, 3)
-    for step in range(3):
-        opt.zero_grad()
-        loss = (model(temps) - 0.3).pow(2).mean()
-        loss.backward()
-        opt.step()
-        traj.log(step, loss=loss)
-    traj.close()
-    traj.state(model, optimizer=opt)
-    return traj
+    return watched_fit(model, torch.optim.SGD(model.parameters(), lr=0.05), lambda: (model(temps) - 0.3).pow(2).mean())
 
 
 def test_a_dropped_custom_initialisation_is_reported_as_init():
@@ -208,19 +212,9 @@ def greenhouse(opt_class=torch.optim.SGD, outputs: str = "all", norm: bool = Tru
 
     torch.manual_seed(2)
     model = Climate()
-    opt = opt_class(model.parameters(), lr=0.1, momentum=0.5)
-    traj = Trajectory()
-    traj.watch(model, opt)
     x = torch.linspace(0, 1, 32).reshape(8, 4)
-    for step in range(3):
-        opt.zero_grad()
-        loss = model(x)["humidity"].pow(2).mean()
-        loss.backward()
-        opt.step()
-        traj.log(step, loss=loss)
-    traj.close()
-    traj.state(model, optimizer=opt)
-    return traj
+    return watched_fit(model, opt_class(model.parameters(), lr=0.1, momentum=0.5),
+                       lambda: model(x)["humidity"].pow(2).mean())
 
 
 def _row(golden, new, policy: Policy | None = None) -> tuple[object, dict]:
