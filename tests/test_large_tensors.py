@@ -78,7 +78,7 @@ def test_a_few_moved_elements_are_caught_as_the_elementwise_rule_catches_them(mo
 def test_the_issues_fused_adam_case_is_caught():
     """19 of 1.18M weights moved by up to 2.2e-6, on top of dense 1-ulp drift (the issue's numbers)."""
     rng = np.random.default_rng(7)
-    g = (rng.uniform(-1, 1, 1_176_000) * 0.0357).astype(np.float32)  # PyTorch's Linear(784, 1500) init bound 1/sqrt(784)
+    g = (rng.uniform(-1, 1, 1_176_000) * 0.0357).astype(np.float32)  # U(-1/sqrt(784), 1/sqrt(784)): torch.nn.Linear docs, init of Linear(784, 1500)
     n = ulp_drift(g, rng)
     where = rng.choice(g.size, 19, replace=False)
     n[where] = g[where] + np.linspace(5e-7, 2.2e-6, 19).astype(np.float32)
