@@ -117,7 +117,7 @@ def rewrite(path: Path, table: Any = None, metadata: dict[bytes, bytes] | None =
     merged.update(metadata or {})
     table = original if table is None else table
     if reseal:
-        merged[golden_format.KEY_DIGEST] = golden_format.content_digest(path.name, table, merged).encode()
+        merged = golden_format.reseal(path.name, table, merged)
     pq.write_table(table.replace_schema_metadata(merged), path)
 
 

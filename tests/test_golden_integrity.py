@@ -72,13 +72,25 @@ def _independent_digest(path: Path) -> str:
         fmt = "<q" if str(t) == "int64" else "<d"
         return out + b"".join(struct.pack(fmt, 0 if c is None else c) for c in cells)
 
-    body = b"trainguard golden digest 1\x00" + s(path.name.encode())
     items = sorted((k, v) for k, v in meta.items() if k.startswith(b"trainguard.") and k != b"trainguard.digest")
-    body += struct.pack("<Q", len(items)) + b"".join(s(k) + s(v) for k, v in items)
-    body += struct.pack("<Q", table.num_columns)
-    for field in table.schema:
-        body += s(field.name.encode()) + s(type_name(field.type).encode())
-        body += values(field.type, table.column(field.name).to_pylist())
+    head = s(path.name.encode()) + struct.pack("<Q", len(items)) + b"".join(s(k) + s(v) for k, v in items)
+    head += struct.pack("<Q", table.num_columns)
+    if int(meta[b"trainguard.format_version"]) < 4:
+        body = b"trainguard golden digest 1\x00" + head
+        for field in table.schema:
+            body += s(field.name.encode()) + s(type_name(field.type).encode())
+            body += values(field.type, table.column(field.name).to_pylist())
+        return "sha256:" + hashlib.sha256(body).hexdigest()
+    # Format 4: each column has its own digest, listed in trainguard.columns; the file's digest
+    # covers the metadata (so those column digests) and the column names and types.
+    listed = json.loads(meta[b"trainguard.columns"])
+    assert [name for name, _ in listed] == table.column_names
+    for (name, stored), field in zip(listed, table.schema):
+        column = b"trainguard column digest 1\x00" + s(path.name.encode()) + s(name.encode())
+        column += s(type_name(field.type).encode()) + values(field.type, table.column(name).to_pylist())
+        assert stored == hashlib.sha256(column).hexdigest(), (path.name, name)
+    body = b"trainguard golden digest 2\x00" + head
+    body += b"".join(s(f.name.encode()) + s(type_name(f.type).encode()) for f in table.schema)
     return "sha256:" + hashlib.sha256(body).hexdigest()
 
 
@@ -86,7 +98,7 @@ def test_every_file_carries_current_format_metadata_and_a_digest_matching_the_do
     run_ids = set()
     for name in ("metrics.parquet", "state.parquet", "trace.parquet"):
         meta = pq.ParquetFile(folder / name).schema_arrow.metadata
-        assert meta[b"trainguard.format_version"] == b"3"
+        assert meta[b"trainguard.format_version"] == b"4"
         assert meta[b"trainguard.writer"] == __version__.encode()
         digest = meta[b"trainguard.digest"].decode()
         assert digest.startswith("sha256:") and len(digest) == 7 + 64
@@ -205,7 +217,7 @@ def test_upgrade_goldens_is_idempotent_keeps_content_and_adds_digests(tmp_path, 
     assert "vouches for their content" in out  # the user is told what the upgrade takes on trust
     assert snapshot(current) == current_before  # already current: not rewritten
     back = golden.read_run(old)
-    assert back.meta["format_version"] == 3 and same_run(back, replace(A, trace=None))
+    assert back.meta["format_version"] == 4 and same_run(back, replace(A, trace=None))
     for name in ("metrics.parquet", "state.parquet"):
         meta = pq.ParquetFile(old / name).schema_arrow.metadata
         assert meta[b"trainguard.digest"].decode() == _independent_digest(old / name)
@@ -260,9 +272,9 @@ def test_upgrade_of_a_folder_is_atomic_when_interrupted(tmp_path, monkeypatch):
 
 def test_a_newer_format_is_refused_saying_which_trainguard_reads_it(folder, tmp_path, capsys):
     for name in ("metrics.parquet", "state.parquet", "trace.parquet"):
-        rewrite(folder / name, metadata={b"trainguard.format_version": b"4", b"trainguard.writer": b"0.9.0"})
-    error = _corrupt(folder, folder / "metrics.parquet", "golden format 4", "by trainguard 0.9.0",
-                     f"this trainguard ({__version__}) reads formats 1 to 3")
+        rewrite(folder / name, metadata={b"trainguard.format_version": b"5", b"trainguard.writer": b"0.9.0"})
+    error = _corrupt(folder, folder / "metrics.parquet", "golden format 5", "by trainguard 0.9.0",
+                     f"this trainguard ({__version__}) reads formats 1 to 4")
     assert isinstance(error, GoldenVersionError) and "trainguard 0.9.0 or later" in error.fix
     before = snapshot(folder.parent)
     assert main(["upgrade-goldens", str(folder.parent)]) == 2  # never "upgrades" a newer golden down
@@ -509,7 +521,7 @@ def test_ini_max_file_mib_refuses_large_goldens_in_a_real_run(pytester):
     assert "Traceback" not in out
 
 
-def test_a_format_2_golden_is_read_without_its_trace_and_upgraded_to_3(tmp_path, monkeypatch, capsys):
+def test_a_format_2_golden_is_read_without_its_trace_and_upgraded_to_current(tmp_path, monkeypatch, capsys):
     """Format 3 numbers trace events in call order; a format-2 trace grouped them by stage, so it is
     left out when read (the report says why) and dropped by upgrade-goldens; metrics and state stay."""
     from trainguard.core import golden_format
@@ -530,4 +542,57 @@ def test_a_format_2_golden_is_read_without_its_trace_and_upgraded_to_3(tmp_path,
     assert main(["upgrade-goldens", str(root)]) == 0
     assert "upgraded from format 2 (its trace was dropped" in capsys.readouterr().out
     assert sorted(p.name for p in target.iterdir()) == ["metrics.parquet", "state.parquet"]
-    assert golden.read_run(target).meta["format_version"] == 3
+    assert golden.read_run(target).meta["format_version"] == golden_format.FORMAT_VERSION == 4
+
+
+# -- format 4: per-column digests and the light read ---------------------------------------------
+
+
+def _edit_first_value(path: Path, reseal: bool = False) -> None:
+    """Change one stored value of the first state row (its checksum column left as it was)."""
+    table = pq.read_table(path)
+    cells = table.column("values").to_pylist()
+    first = next(i for i, c in enumerate(cells) if c)
+    cells[first] = [cells[first][0] + 1.0] + cells[first][1:]
+    index = table.schema.get_field_index("values")
+    rewrite(path, table.set_column(index, "values", pa.array(cells, table.schema.field("values").type)), reseal=reseal)
+
+
+def test_a_light_read_leaves_stored_values_undecoded_and_still_verifies_what_it_reads(folder):
+    store = golden.GoldenStore(folder.parent.parent.parent)
+    light = store.read(folder, light=True)
+    assert light.trace is None  # the trace file is not read at all
+    assert all(rec.values is None for rec in light.tensors.values())
+    full = store.read(folder)
+    assert {n: r.sha256 for n, r in light.tensors.items()} == {n: r.sha256 for n, r in full.tensors.items()}
+    assert any(rec.values is not None for rec in full.tensors.values()) and full.trace
+    # An edited checksum column is caught by the light read too (its column digest no longer matches).
+    table = pq.read_table(folder / "state.parquet")
+    sums = table.column("sha256").to_pylist()
+    sums[0] = "0" * 64
+    rewrite(folder / "state.parquet", table.set_column(table.schema.get_field_index("sha256"), "sha256", pa.array(sums)))
+    with pytest.raises(GoldenError, match="for column 'sha256'"):
+        store.read(folder, light=True)
+
+
+def test_an_edited_stored_value_is_caught_whenever_values_are_read(folder):
+    """The light read skips the values column, so it cannot see an edit there; any read that uses the
+    values (a check that found a checksum differing, `trainguard show`, audit) decodes and verifies it."""
+    _edit_first_value(folder / "state.parquet")
+    store = golden.GoldenStore(folder.parent.parent.parent)
+    store.read(folder, light=True)  # not decoded, not used: nothing to verify
+    _corrupt(folder, folder / "state.parquet", "for column 'values'", "tampering or corruption")
+
+
+def test_column_digests_are_sealed_by_the_file_digest(folder):
+    """Editing a value and its column digest, without recomputing the file's digest, is caught before
+    anything is decoded; recomputing both (`reseal`) is what a deliberate edit takes (no signature)."""
+    path = folder / "state.parquet"
+    meta = dict(pq.ParquetFile(path).schema_arrow.metadata)
+    _edit_first_value(path)
+    table = pq.read_table(path)
+    meta[b"trainguard.columns"] = golden_format.columns_entry("state.parquet", table)
+    pq.write_table(table.replace_schema_metadata(meta), path)
+    _corrupt(folder, path, "does not match the SHA-256 digest stored in it: its content or metadata was changed")
+    pq.write_table(table.replace_schema_metadata(golden_format.reseal("state.parquet", table, meta)), path)
+    assert golden.read_run(folder).tensors  # resealed: reads again (why golden changes need review)

@@ -25,7 +25,7 @@ from golden_samples import make_run, rewrite, snapshot
 
 from trainguard.core import golden_format
 from trainguard.core import store as golden
-from trainguard.core.errors import GoldenCorruptError, GoldenError
+from trainguard.core.errors import GoldenCorruptError, GoldenError, TrainguardError
 from trainguard.core.meta import GoldenMeta
 from trainguard.core.paths import golden_folder
 from trainguard.core.records import MetricSeries, Run, TensorRecord
@@ -530,3 +530,20 @@ def test_a_rebless_does_not_keep_a_crafted_calibrated_entry(tmp_path):
                    store=golden.GoldenStore(tmp_path / "golden"))
     assert result.outcome == BLESSED_CHANGED  # the unreadable golden was replaced
     assert "calibrated" not in golden.read_run(folder).meta
+
+
+def test_a_light_read_bounds_every_column_it_decodes(tmp_path, monkeypatch):
+    """A check's light read leaves a format-4 golden's stored values undecoded, so a values bomb costs it
+    nothing; the full read a differing run triggers refuses the bomb as before. A format-3 golden has one
+    digest over every column, so it is decoded whole even when light, and refused whole too."""
+    store = golden.GoldenStore(tmp_path)
+    _state_bomb(tmp_path / "v4", 64 * 2**20)
+    light = store.read(tmp_path / "v4", light=True)
+    assert light.tensors["w0"].values is None
+    with pytest.raises(TrainguardError, match="trainguard_max_file_mib"):
+        store.read(tmp_path / "v4")
+    with monkeypatch.context() as m:
+        m.setattr(golden_format, "FORMAT_VERSION", 3)
+        _state_bomb(tmp_path / "v3", 64 * 2**20)
+    with pytest.raises(TrainguardError, match="trainguard_max_file_mib"):
+        store.read(tmp_path / "v3", light=True)

@@ -121,7 +121,7 @@ def set_fingerprint_torch(folder: Path, version: str) -> None:
         metadata[b"trainguard.meta"] = json.dumps(meta, sort_keys=True).encode()
         assert metadata[b"trainguard.format_version"] == str(golden_format.FORMAT_VERSION).encode()
         # reseal: recompute the content digest, as a deliberate metadata edit must
-        metadata[golden_format.KEY_DIGEST] = golden_format.content_digest(path.name, table, metadata).encode()
+        metadata = golden_format.reseal(path.name, table, metadata)
         pq.write_table(table.replace_schema_metadata(metadata), path)
 
 
@@ -130,7 +130,7 @@ def set_format_version(folder: Path, version: str) -> None:
     for path in sorted(folder.glob("*.parquet")):
         table = pq.read_table(path)
         metadata = {**table.schema.metadata, b"trainguard.format_version": version.encode()}
-        metadata[golden_format.KEY_DIGEST] = golden_format.content_digest(path.name, table, metadata).encode()
+        metadata = golden_format.reseal(path.name, table, metadata)
         pq.write_table(table.replace_schema_metadata(metadata), path)
 
 

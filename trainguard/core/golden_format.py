@@ -45,7 +45,13 @@ from .version import __version__
 #: `init` added) and keeps a wider count-sketch for large state tensors. A format-2 golden is
 #: read with its trace left out (its events were grouped another way) and compared on
 #: statistics where its sketch is the old size; `upgrade-goldens` drops the old trace.
-FORMAT_VERSION = 3
+#: Format 4 verifies each column on its own (`column_digests`, stored as `trainguard.columns`)
+#: and seals the file with a digest over metadata and schema, so a reader may leave a column
+#: undecoded (the state's stored values, when every checksum already matches) and still have
+#: verified everything it uses. Stored values, statistics and sketches are as in format 3.
+FORMAT_VERSION = 4
+#: First format with per-column digests.
+COLUMN_DIGEST_FORMAT = 4
 #: Formats whose trace is still compared (older traces are left out when read).
 TRACE_FORMAT = 3
 #: Oldest format this trainguard reads.
@@ -61,6 +67,7 @@ KEY_RUN_ID = b"trainguard.run_id"
 KEY_WRITER = b"trainguard.writer"
 KEY_DIGEST = b"trainguard.digest"
 KEY_PREFIX = b"trainguard."
+KEY_COLUMNS = b"trainguard.columns"
 #: Largest golden file read by default; larger files are refused before loading. Real goldens
 #: are kilobytes to a few MiB (values are kept only for tensors up to `trainguard_max_values`).
 DEFAULT_MAX_FILE_BYTES = 32 * 1024 * 1024
@@ -72,6 +79,8 @@ MAX_SKETCH = 4096
 #: Metadata JSON nested deeper than this is refused (trainguard writes depth 4 at most).
 MAX_META_DEPTH = 32
 _DIGEST_LABEL = b"trainguard golden digest 1\x00"
+_DIGEST_LABEL_2 = b"trainguard golden digest 2\x00"
+_COLUMN_LABEL = b"trainguard column digest 1\x00"
 
 _STATE_FLOAT_COLUMNS = ("min", "max", "mean", "l2")
 #: Columns a format-1 reader tolerates missing (added late in format 1; read as null).
@@ -184,7 +193,10 @@ def _feed_array(h: Any, arr: Any) -> None:
         arr = arr.dictionary_decode()
     n = len(arr)
     h.update(_u64(n))
-    valid = arr.is_valid().to_numpy(zero_copy_only=False).astype(np.uint8)
+    # Without nulls (every file trainguard writes) the buffers are read directly: pyarrow.compute
+    # calls cost ~0.1 ms each, more than the small columns of a golden they would process.
+    plain = arr.null_count == 0
+    valid = np.ones(n, np.uint8) if plain else arr.is_valid().to_numpy(zero_copy_only=False).astype(np.uint8)
     h.update(valid.tobytes())
     t = arr.type
     if pa.types.is_int64(t) or pa.types.is_float64(t):
@@ -193,7 +205,7 @@ def _feed_array(h: Any, arr: Any) -> None:
                                                  dtype="<i8" if pa.types.is_int64(t) else "<f8")).cast("B"))
     elif pa.types.is_string(t):
         filled = arr.fill_null("") if arr.null_count else arr
-        lengths = pc.binary_length(filled).to_numpy(zero_copy_only=False).astype("<u8")
+        lengths = (_cell_lengths(filled) if plain else pc.binary_length(filled).to_numpy(zero_copy_only=False)).astype("<u8")
         h.update(lengths.tobytes())
         if n:
             offsets = np.frombuffer(filled.buffers()[1], dtype="<i4")[filled.offset: filled.offset + n + 1]
@@ -201,7 +213,7 @@ def _feed_array(h: Any, arr: Any) -> None:
             if data is not None and offsets[-1] > offsets[0]:
                 h.update(memoryview(data)[int(offsets[0]): int(offsets[-1])])
     elif pa.types.is_list(t):
-        lengths = arr.value_lengths().fill_null(0).to_numpy(zero_copy_only=False).astype("<u8")
+        lengths = list_lengths(arr).astype("<u8")
         h.update(lengths.tobytes())
         _feed_array(h, arr.flatten())
     else:
@@ -230,20 +242,61 @@ def content_digest(kind: str, table: Any, metadata: dict[bytes, bytes]) -> str:
     names, types and order, and the metadata, but not Parquet's encodings, compression,
     page or row-group layout: the file may be re-encoded by any writer and still verify.
     """
+    h = _digest_head(_DIGEST_LABEL, kind, metadata)
+    h.update(_u64(table.num_columns))
+    for name, column in zip(table.column_names, table.columns):
+        h.update(_name_and_type(name, column.type))
+        _feed_array(h, column)
+    return "sha256:" + h.hexdigest()
+
+
+def _digest_head(label: bytes, kind: str, metadata: dict[bytes, bytes]) -> Any:
     h = hashlib.sha256()
-    h.update(_DIGEST_LABEL)
+    h.update(label)
     kind_b = kind.encode()
     h.update(_u64(len(kind_b)) + kind_b)
     items = sorted((k, v) for k, v in metadata.items() if k.startswith(KEY_PREFIX) and k != KEY_DIGEST)
     h.update(_u64(len(items)))
     for key, value in items:
         h.update(_u64(len(key)) + key + _u64(len(value)) + value)
-    h.update(_u64(table.num_columns))
-    for name, column in zip(table.column_names, table.columns):
-        name_b = name.encode()
-        type_b = _canon_type(column.type).encode()
-        h.update(_u64(len(name_b)) + name_b + _u64(len(type_b)) + type_b)
-        _feed_array(h, column)
+    return h
+
+
+def _name_and_type(name: str, arrow_type: Any) -> bytes:
+    name_b = name.encode()
+    type_b = _canon_type(arrow_type).encode()
+    return _u64(len(name_b)) + name_b + _u64(len(type_b)) + type_b
+
+
+def column_digest(kind: str, name: str, column: Any) -> str:
+    """Hex SHA-256 of one column (format 4): the label `trainguard column digest 1` + NUL,
+    str(kind), str(name), str(canonical type), then the column's values exactly as
+    `content_digest` feeds them. A reader that decodes a column checks it against this."""
+    h = hashlib.sha256()
+    h.update(_COLUMN_LABEL)
+    kind_b = kind.encode()
+    h.update(_u64(len(kind_b)) + kind_b)
+    h.update(_name_and_type(name, column.type))
+    _feed_array(h, column)
+    return h.hexdigest()
+
+
+def columns_entry(kind: str, table: Any) -> bytes:
+    """The `trainguard.columns` metadata value: a JSON list of [name, column digest] in schema order."""
+    pairs = [[name, column_digest(kind, name, column)] for name, column in zip(table.column_names, table.columns)]
+    return json.dumps(pairs, separators=(",", ":")).encode()
+
+
+def sealed_digest(kind: str, schema: Any, metadata: dict[bytes, bytes]) -> str:
+    """The format-4 `trainguard.digest`: "sha256:" + hex SHA-256 of the label `trainguard golden
+    digest 2` + NUL, str(kind), the `trainguard.` metadata as in `content_digest` (which includes
+    `trainguard.columns`, so every column's digest), then u64(column count) and str(name) +
+    str(canonical type) per column. It covers the data through the column digests; nothing
+    here needs the data itself, so it is checked before any column is decoded."""
+    h = _digest_head(_DIGEST_LABEL_2, kind, metadata)
+    h.update(_u64(len(schema.names)))
+    for field in schema:
+        h.update(_name_and_type(field.name, field.type))
     return "sha256:" + h.hexdigest()
 
 
@@ -275,10 +328,26 @@ def _metadata(meta_json: bytes, run_id: str) -> dict[bytes, bytes]:
 
 
 def seal(kind: str, table: Any, meta_json: bytes, run_id: str) -> Any:
-    """`table` with format-2 metadata (`meta_json` stored as given), digest included."""
-    metadata = _metadata(meta_json, run_id)
-    metadata[KEY_DIGEST] = content_digest(kind, table, metadata).encode()
-    return table.replace_schema_metadata(metadata)
+    """`table` with the current format's metadata (`meta_json` stored as given), digests included."""
+    return table.replace_schema_metadata(reseal(kind, table, _metadata(meta_json, run_id)))
+
+
+def reseal(kind: str, table: Any, metadata: dict[bytes, bytes]) -> dict[bytes, bytes]:
+    """`metadata` with the digests recomputed for `table` as its declared format defines them
+    (what someone who edits a golden on purpose can always do; the digests are no signature).
+    Used by `upgrade-goldens` and by tests that must reach the checks behind the digest."""
+    out = dict(metadata)
+    try:
+        version = int(out.get(KEY_VERSION, b"0").decode("ascii"))
+    except (UnicodeDecodeError, ValueError):
+        version = 0
+    if version >= COLUMN_DIGEST_FORMAT:
+        out[KEY_COLUMNS] = columns_entry(kind, table)
+        out[KEY_DIGEST] = sealed_digest(kind, table.schema, out).encode()
+    else:
+        out.pop(KEY_COLUMNS, None)
+        out[KEY_DIGEST] = content_digest(kind, table, out).encode()
+    return out
 
 
 def metrics_table(run: Run) -> Any:
@@ -369,12 +438,13 @@ class FileRead:
     """One verified golden file: its Arrow table, metadata, format version, run id (None in format 1),
     and the limits it was read under (which the conversion to records keeps applying)."""
 
-    __slots__ = ("table", "meta", "version", "run_id", "limits")
+    __slots__ = ("table", "meta", "version", "run_id", "limits", "deferred")
 
     def __init__(self, table: Any, meta: GoldenMeta, version: int, run_id: str | None,
-                 limits: dict[str, int] | None = None) -> None:
+                 limits: dict[str, int] | None = None, deferred: tuple[str, ...] = ()) -> None:
         self.table, self.meta, self.version, self.run_id = table, meta, version, run_id
         self.limits = limits or read_limits(DEFAULT_MAX_FILE_BYTES)
+        self.deferred = deferred  # columns not decoded (format 4 and later, on request)
 
     def metrics(self, path: Path) -> dict[str, MetricSeries]:
         """The metric series of a `metrics.parquet` read, with the same limit on distinct names."""
@@ -398,7 +468,8 @@ def read_limits(max_bytes: int) -> dict[str, int]:
 
 
 def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
-              commands: FixCommands | None = None, data: bytes | None = None, accept_format_1: bool = False) -> FileRead:
+              commands: FixCommands | None = None, data: bytes | None = None, accept_format_1: bool = False,
+              skip: tuple[str, ...] = ()) -> FileRead:
     """Read and verify one golden file; `path` may be a commit's temp file for `kind`.
 
     The file is read into memory once (so what is checked is what is decoded), its footer
@@ -408,6 +479,11 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
 
     Format 1 carried no digest, so a format-1 file cannot be told from an edited one: it is
     refused (with the fix) unless `accept_format_1`, which only `upgrade-goldens` passes.
+
+    From format 4 on, the columns named in `skip` are left undecoded (`FileRead.deferred`):
+    the file's sealed digest is checked on metadata and schema first, then each decoded column
+    against its own digest, so what is returned is verified and what is skipped costs nothing.
+    Older formats are always read whole (their one digest needs every column).
 
     Raises `GoldenCorruptError` or `GoldenVersionError` naming `path`; `commands` supplies
     the re-bless command quoted when a digest does not match.
@@ -421,21 +497,7 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
     if len(data) > max_bytes:
         raise _too_large(path, len(data), max_bytes)
     limits = read_limits(max_bytes)
-    raise_limit = _RAISE_LIMIT
-    try:
-        bounds = measure(data, limits["page"])
-    except OverLimitError as exc:
-        raise GoldenCorruptError(path, f"would decode to more than the limits allow ({exc}); refusing to decode it",
-                                 raise_limit) from None
-    except BoundsError as exc:
-        raise GoldenCorruptError(path, f"is not a readable Parquet file ({exc})") from None
-    if bounds.decoded_bytes > limits["decoded"]:
-        raise GoldenCorruptError(path, f"would decode to about {bounds.decoded_bytes} bytes, over the limit of "
-                                 f"{limits['decoded']} ({DECODED_FACTOR} x the file size limit); refusing to decode it",
-                                 raise_limit)
-    if kind != METRICS_FILE and bounds.num_rows > limits["records"]:
-        raise GoldenCorruptError(path, f"declares {bounds.num_rows} rows, more than the {limits['records']} allowed "
-                                 "(file size limit / 256)", raise_limit)
+    bounds = _bounds(path, data, kind, limits, skip)
     strings = [f.name for f in expected if f.type == pa.string()]
     try:
         pf = pq.ParquetFile(pa.BufferReader(data), read_dictionary=strings)
@@ -466,6 +528,14 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
     extra = [n for n in schema.names if n not in present]
     if extra:
         raise GoldenCorruptError(path, f"has columns trainguard does not write: {', '.join(map(repr, extra[:5]))}")
+    sealed: tuple[str, dict[str, str]] | None = None
+    deferred: tuple[str, ...] = ()
+    if version >= COLUMN_DIGEST_FORMAT:
+        sealed = _check_sealed(path, kind, schema, raw, commands or current())
+        deferred = tuple(n for n in present if n in skip)
+        present = [n for n in present if n not in deferred]
+    elif skip:  # an older format is decoded whole: bound the skipped columns' pages too
+        bounds = _bounds(path, data, kind, limits, ())
     try:
         if pf.metadata.num_row_groups != len(bounds.row_groups):
             raise GoldenCorruptError(path, "has a footer pyarrow reads differently from the Parquet spec")
@@ -475,14 +545,36 @@ def read_file(path: Path, kind: str, max_bytes: int = DEFAULT_MAX_FILE_BYTES,
         raise
     except (pa.ArrowException, OSError, ValueError, MemoryError, OverflowError, TypeError, KeyError, IndexError) as exc:
         raise GoldenCorruptError(path, f"cannot be read ({short_error(exc)})") from None
-    _check_cells(path, table, strings, limits)
+    _check_cells(path, table, [n for n in strings if n in present], limits)
     run_id = None
-    if version >= 2:
+    if sealed is not None:
+        run_id = sealed[0]
+        _check_columns(path, kind, table, sealed[1], commands or current())
+    elif version >= 2:
         run_id = _check_digest(path, kind, table, raw, commands or current())
-    return FileRead(table, meta, version, run_id, limits)
+    return FileRead(table, meta, version, run_id, limits, deferred)
 
 
 _RAISE_LIMIT = "raise the ini option trainguard_max_file_mib if the file is genuine"
+
+
+def _bounds(path: Path, data: bytes, kind: str, limits: dict[str, int], skip: tuple[str, ...]) -> Any:
+    """The file's footer and page headers measured against `limits`, before pyarrow decodes anything."""
+    try:
+        bounds = measure(data, limits["page"], skip)
+    except OverLimitError as exc:
+        raise GoldenCorruptError(path, f"would decode to more than the limits allow ({exc}); refusing to decode it",
+                                 _RAISE_LIMIT) from None
+    except BoundsError as exc:
+        raise GoldenCorruptError(path, f"is not a readable Parquet file ({exc})") from None
+    if bounds.decoded_bytes > limits["decoded"]:
+        raise GoldenCorruptError(path, f"would decode to about {bounds.decoded_bytes} bytes, over the limit of "
+                                 f"{limits['decoded']} ({DECODED_FACTOR} x the file size limit); refusing to decode it",
+                                 _RAISE_LIMIT)
+    if kind != METRICS_FILE and bounds.num_rows > limits["records"]:
+        raise GoldenCorruptError(path, f"declares {bounds.num_rows} rows, more than the {limits['records']} allowed "
+                                 "(file size limit / 256)", _RAISE_LIMIT)
+    return bounds
 
 
 def _too_large(path: Path, size: int, max_bytes: int) -> GoldenCorruptError:
@@ -510,21 +602,49 @@ def _read_bytes(path: Path, max_bytes: int) -> bytes:
 
 
 def string_lengths(column: Any) -> np.ndarray:
-    """The UTF-8 byte length of every cell of a string column (dictionary-encoded or not), nulls 0."""
+    """The UTF-8 byte length of every cell of a string column (dictionary-encoded or not), nulls 0.
+
+    Read from the Arrow offsets buffer (a subtraction per cell), not through `pyarrow.compute`:
+    this runs on every golden read, and a compute kernel call costs more than the whole column.
+    Offsets that go backwards (a crafted file) raise ValueError.
+    """
     import pyarrow as pa
-    import pyarrow.compute as pc
 
     parts = []
     for chunk in (column.chunks if isinstance(column, pa.ChunkedArray) else [column]):
         if pa.types.is_dictionary(chunk.type):
-            lengths = pc.binary_length(chunk.dictionary).fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64)
-            codes = chunk.indices.fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64)
+            lengths = _cell_lengths(chunk.dictionary)
+            indices = chunk.indices
+            codes = (indices.fill_null(0) if indices.null_count else indices).to_numpy(zero_copy_only=False)
+            codes = codes.astype(np.int64)
             if codes.size and (codes.min() < 0 or codes.max() >= max(lengths.size, 1)):
-                raise ValueError("dictionary index out of range")
+                raise ValueError("refers to dictionary entries that do not exist")
             parts.append(lengths[codes] if lengths.size else np.zeros(codes.size, np.int64))
         else:
-            parts.append(pc.binary_length(chunk).fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64))
+            parts.append(_cell_lengths(chunk))
     return np.concatenate(parts) if parts else np.zeros(0, np.int64)
+
+
+def _cell_lengths(array: Any) -> np.ndarray:
+    import pyarrow as pa
+
+    n = len(array)
+    if n == 0:
+        return np.zeros(0, np.int64)
+    large = pa.types.is_large_string(array.type) or pa.types.is_large_binary(array.type)
+    if not (large or pa.types.is_string(array.type) or pa.types.is_binary(array.type)):
+        raise ValueError(f"is not a string column ({array.type})")
+    buffer = array.buffers()[1]
+    width = 8 if large else 4
+    if buffer is None or buffer.size < (array.offset + n + 1) * width:
+        raise ValueError("has an offsets buffer shorter than its rows")
+    offsets = np.frombuffer(buffer, dtype="<i8" if large else "<i4", count=n + 1, offset=array.offset * width)
+    lengths = np.diff(offsets.astype(np.int64))
+    if lengths.size and lengths.min() < 0:
+        raise ValueError("has string offsets that go backwards")
+    if array.null_count:
+        lengths[array.is_null().to_numpy(zero_copy_only=False)] = 0
+    return lengths
 
 
 def _check_cells(path: Path, table: Any, strings: list[str], limits: dict[str, int]) -> None:
@@ -533,14 +653,17 @@ def _check_cells(path: Path, table: Any, strings: list[str], limits: dict[str, i
     for name in strings:
         try:
             total += int(string_lengths(table.column(name)).sum())
-        except ValueError:
-            raise GoldenCorruptError(path, f"column {name!r} refers to dictionary entries that do not exist") from None
+        except ValueError as exc:
+            raise GoldenCorruptError(path, f"column {name!r} {exc}") from None
     if total > limits["strings"]:
         raise GoldenCorruptError(path, f"holds {total} bytes of text once decoded, over the {limits['strings']}-byte "
                                  "limit", _RAISE_LIMIT)
     for name, cap in (("shape", limits["dims"]), ("sketch", limits["sketch"])):
         if name in table.column_names:
-            lengths = list_lengths(table.column(name))
+            try:
+                lengths = list_lengths(table.column(name))
+            except ValueError as exc:
+                raise GoldenCorruptError(path, f"column {name!r} {exc}") from None
             if lengths.size and int(lengths.max()) > cap:
                 raise GoldenCorruptError(path, f"has a {name} of {int(lengths.max())} values; trainguard writes at "
                                          f"most {cap}")
@@ -550,8 +673,15 @@ def list_lengths(column: Any) -> np.ndarray:
     """The length of every cell of a list column (nulls 0), from its offsets: nothing is converted."""
     import pyarrow as pa
 
-    chunks = column.chunks if isinstance(column, pa.ChunkedArray) else [column]
-    parts = [c.value_lengths().fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64) for c in chunks]
+    parts = []
+    for chunk in (column.chunks if isinstance(column, pa.ChunkedArray) else [column]):
+        if chunk.null_count:
+            parts.append(chunk.value_lengths().fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64))
+            continue
+        lengths = np.diff(chunk.offsets.to_numpy(zero_copy_only=False).astype(np.int64))
+        if lengths.size and lengths.min() < 0:
+            raise ValueError("has list offsets that go backwards")
+        parts.append(lengths)
     return np.concatenate(parts) if parts else np.zeros(0, np.int64)
 
 
@@ -573,6 +703,48 @@ def _check_digest(path: Path, kind: str, table: Any, raw: dict[bytes, bytes], co
             path, "does not match the SHA-256 digest stored in it: its content or metadata was changed after "
             "trainguard wrote it (tampering or corruption)", fix)
     return run_id.decode("ascii")
+
+
+def _tamper_fix(commands: FixCommands) -> str:
+    return f"restore the file from version control, or re-bless the test: {commands.bless_any()}"
+
+
+def _check_sealed(path: Path, kind: str, schema: Any, raw: dict[bytes, bytes],
+                  commands: FixCommands) -> tuple[str, dict[str, str]]:
+    """Format 4: the sealed digest over metadata and schema, and the per-column digests it covers."""
+    stored = raw.get(KEY_DIGEST)
+    run_id = raw.get(KEY_RUN_ID)
+    fix = _tamper_fix(commands)
+    if stored is None:
+        raise GoldenCorruptError(path, "has no content digest although its format requires one; it was edited "
+                                 "or damaged after trainguard wrote it", fix)
+    if run_id is None or not (1 <= len(run_id) <= 64) or not run_id.isalnum():
+        raise GoldenCorruptError(path, "has no valid run id in its metadata", fix)
+    if stored != sealed_digest(kind, schema, raw).encode():
+        raise GoldenCorruptError(
+            path, "does not match the SHA-256 digest stored in it: its content or metadata was changed after "
+            "trainguard wrote it (tampering or corruption)", fix)
+    try:
+        pairs = json.loads(raw.get(KEY_COLUMNS, b"").decode("utf-8"))
+        digests = {str(n): str(d) for n, d in pairs}
+        names = [str(n) for n, _ in pairs]
+    except (UnicodeDecodeError, ValueError, TypeError, RecursionError):
+        raise GoldenCorruptError(path, "has no readable list of column digests (trainguard.columns)", fix) from None
+    if names != list(schema.names) or not all(len(d) == 64 for d in digests.values()):
+        raise GoldenCorruptError(path, "has column digests (trainguard.columns) that do not match its columns", fix)
+    return run_id.decode("ascii"), digests
+
+
+def _check_columns(path: Path, kind: str, table: Any, digests: dict[str, str], commands: FixCommands) -> None:
+    for name, column in zip(table.column_names, table.columns):
+        try:
+            actual = column_digest(kind, name, column)
+        except (TypeError, ValueError, MemoryError) as exc:  # pragma: no cover - schema was checked before
+            raise GoldenCorruptError(path, f"cannot be digested ({short_error(exc)})") from None
+        if actual != digests.get(name):
+            raise GoldenCorruptError(
+                path, f"does not match the SHA-256 digest stored in it for column {name!r}: its content was changed "
+                "after trainguard wrote it (tampering or corruption)", _tamper_fix(commands))
 
 
 def _depth_ok(value: Any, limit: int) -> bool:
@@ -739,9 +911,10 @@ def _int_list_cells(table: Any, column: str) -> list[tuple[int, ...] | None]:
     arr = table.column(column)
     arr = pa.concat_arrays(arr.chunks) if arr.num_chunks else pa.array([], type=arr.type)
     offsets = arr.offsets.to_numpy()
-    flat = arr.values.fill_null(-1).to_numpy(zero_copy_only=False).tolist()
-    bad = arr.values.is_null().to_numpy(zero_copy_only=False)
-    nulls = arr.is_null().to_numpy(zero_copy_only=False)
+    values = arr.values
+    flat = (values.fill_null(-1) if values.null_count else values).to_numpy(zero_copy_only=False).tolist()
+    bad = (values.is_null().to_numpy(zero_copy_only=False) if values.null_count else np.zeros(len(values), bool))
+    nulls = arr.is_null().to_numpy(zero_copy_only=False) if arr.null_count else np.zeros(len(arr), bool)
     out: list[tuple[int, ...] | None] = []
     for i in range(len(arr)):
         lo, hi = int(offsets[i]), int(offsets[i + 1])

@@ -72,7 +72,7 @@ def check(nodeid: str, run: Run, folder: Path, policy: Policy, bless_command: st
     store = store if store is not None else GoldenStore(folder)
     shown = display_path(folder, base)
     try:
-        reference = store.read(folder)
+        reference = store.read(folder, light=True)
     except GoldenMissingError:
         result = GuardResult(nodeid, shown, NO_GOLDEN, run=run)
     except TrainguardError as exc:
@@ -89,6 +89,13 @@ def check(nodeid: str, run: Run, folder: Path, policy: Policy, bless_command: st
             if use_calibrated:
                 policy = calibrated_policy(policy, reference.meta)
             cmp = compare(reference, run, policy)
+            if cmp.outcome != IDENTICAL:
+                # Something differs: read the whole golden, stored values and trace included, for
+                # the verdict's details (the light read above is all a bit-identical run needs).
+                reference = store.read(folder)
+                cmp = compare(reference, run, policy)
+            elif run.trace is not None and store.has_trace(folder):
+                cmp = replace(cmp, trace_note="")  # not read, not needed: every checksum matched
             result = GuardResult(nodeid, shown, cmp.outcome, comparison=cmp, run=run, reference=reference)
     if bless_command is not None:
         result.message = render_result(result, bless_command)

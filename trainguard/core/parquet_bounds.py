@@ -284,8 +284,11 @@ def footer_length(data: bytes) -> int:
     return n
 
 
-def measure(data: bytes, max_page_bytes: int) -> FileBounds:
+def measure(data: bytes, max_page_bytes: int, skip: tuple[str, ...] = ()) -> FileBounds:
     """Walk the footer and every page header of a Parquet file held in `data`.
+
+    The page headers of columns named in `skip` (top-level names) are not walked: a reader
+    that will not decode those columns needs no bound on them (their footer entries still are).
 
     Raises `BoundsError` for anything malformed: a footer or page header that does not parse,
     pages that do not tile their column chunk exactly, value counts that disagree between the
@@ -316,16 +319,20 @@ def measure(data: bytes, max_page_bytes: int) -> FileBounds:
                 raise BoundsError("footer has a column chunk without metadata")
             if chunk.get(1) is not None:
                 raise BoundsError("has a column chunk stored in another file")
-            out.chunks.append(_chunk(data, chunk[3], start, max_page_bytes))
+            out.chunks.append(_chunk(data, chunk[3], start, max_page_bytes, skip))
     if total_rows != num_rows:
         raise BoundsError(f"footer declares {num_rows} rows but its row groups hold {total_rows}")
     return out
 
 
-def _chunk(data: bytes, md: dict[int, object], footer_start: int, max_page_bytes: int) -> ChunkBounds:
+def _chunk(data: bytes, md: dict[int, object], footer_start: int, max_page_bytes: int,
+           skip: tuple[str, ...] = ()) -> ChunkBounds:
     path = md.get(3)
     name = b".".join(p for p in path if isinstance(p, bytes)).decode("utf-8", "replace") \
         if isinstance(path, list) else "?"
+    if skip and isinstance(path, list) and path and isinstance(path[0], bytes) \
+            and path[0].decode("utf-8", "replace") in skip:
+        return ChunkBounds(name, _int(md, 1, "type"))  # not decoded, not walked
     codec = _int(md, 4, "codec")
     if codec not in _CODECS:
         raise BoundsError(f"column {name!r} uses compression codec {codec}, which trainguard never writes")

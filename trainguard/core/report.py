@@ -30,7 +30,7 @@ def _steps_text(steps: list[int]) -> str:
 
 def environment_changes(golden_fp: Mapping[str, Any] | None, new_fp: Mapping[str, Any] | None) -> list[str]:
     """Differences between two fingerprints as `path: old -> new` lines (computed with deepdiff)."""
-    if not golden_fp or not new_fp:
+    if not golden_fp or not new_fp or golden_fp == new_fp:  # the common case: no diff to compute
         return []
     from deepdiff import DeepDiff
 

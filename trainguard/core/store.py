@@ -96,10 +96,13 @@ class GoldenStore:
         return sorted(found)
 
     # -- reading -------------------------------------------------------------------
-    def read(self, folder: str | os.PathLike[str], accept_format_1: bool = False) -> Run:
+    def read(self, folder: str | os.PathLike[str], accept_format_1: bool = False, light: bool = False) -> Run:
         """Read a golden folder as one consistent set. Never writes anything.
 
         Format-1 files (no digest) are refused unless `accept_format_1` (upgrade only).
+        `light` reads what a bit-identical run needs and no more: no trace file, and (format 4
+        on) the state's stored values left undecoded. A check reads light first and reads
+        the whole golden only when something differs (`guard.check`).
 
         Raises
         ------
@@ -127,7 +130,9 @@ class GoldenStore:
                 files = files_of.resolve()
                 record = files_of.read_commit()
                 _require_pair(folder, files)
-                reads = {kind: self._read_file(path, kind, accept_format_1) for kind, path in files.items()}
+                if light:
+                    files.pop(fmt.TRACE_FILE, None)
+                reads = {kind: self._read_file(path, kind, accept_format_1, light) for kind, path in files.items()}
                 ids = [(kind, r.run_id) for kind, r in reads.items()]
                 if record is not None and any(r != record["run_id"] for _, r in ids):
                     raise GoldenCorruptError(folder / COMMIT_FILE, "names files of another write than its own (run id "
@@ -141,6 +146,10 @@ class GoldenStore:
         described = ", ".join(f"{k}: {r or 'none (format 1)'}" for k, r in ids)
         raise GoldenCorruptError(folder, f"holds files from different writes (run ids {described}); the set is mixed",
                                  "restore the folder from version control, or re-bless the test")
+
+    def has_trace(self, folder: str | os.PathLike[str]) -> bool:
+        """Whether the golden in `folder` holds a trace file (not read: see `read(light=True)`)."""
+        return fmt.TRACE_FILE in FileSet(Path(folder), fmt.KINDS).resolve()
 
     def read_file(self, path: str | os.PathLike[str], kind: str | None = None) -> tuple[Any, Any]:
         """One golden file on its own (for `trainguard show FILE`): its records and metadata.
@@ -168,8 +177,9 @@ class GoldenStore:
             raise GoldenCorruptError(folder, "holds files from different writes; the set is mixed")
         return _run_from(files, reads)
 
-    def _read_file(self, path: Path, kind: str, accept_format_1: bool = False) -> fmt.FileRead:
-        return fmt.read_file(path, kind, self.max_bytes, self.commands, accept_format_1=accept_format_1)
+    def _read_file(self, path: Path, kind: str, accept_format_1: bool = False, light: bool = False) -> fmt.FileRead:
+        skip = ("values",) if light and kind == fmt.STATE_FILE else ()
+        return fmt.read_file(path, kind, self.max_bytes, self.commands, accept_format_1=accept_format_1, skip=skip)
 
     def format_versions(self, folder: Path) -> set[int]:
         """The format versions of a golden's files (one value for a golden trainguard wrote)."""
