@@ -165,3 +165,20 @@ def write_forever(folders: list[str], order: str, started: Any, pause: float = 0
                 if pause:
                     time.sleep(rng.uniform(0, pause))
 
+
+def watched_fit(model: Any, opt: Any, loss_of: Any, steps: int = 3, light: bool = False) -> Any:
+    """A plain watched loop of `steps` steps on a fixed batch (`loss_of()` runs the model), then the state;
+    `light` keeps the check-time trace (one fingerprint per event)."""
+    from trainguard.core.capture import Trajectory
+
+    traj = Trajectory(light_trace=light)
+    traj.watch(model, opt)
+    for step in range(steps):
+        opt.zero_grad()
+        loss = loss_of()
+        loss.backward()
+        opt.step()
+        traj.log(step, loss=loss)
+    traj.close()
+    traj.state(model, optimizer=opt)
+    return traj

@@ -13,6 +13,7 @@ from dataclasses import replace
 import pytest
 import torch
 import torch.nn.functional as F
+from golden_samples import watched_fit
 
 from trainguard.core.capture import Trajectory
 from trainguard.core.comparison import compare
@@ -142,21 +143,6 @@ def test_three_backwards_in_a_step_are_three_events():
     # the generator's gradients appear only after the third backward (loss_g), the only one reaching it
     assert not any(n.startswith("grad generator") for c, n in backward if c in events[:2])
     assert any(n.startswith("grad generator") for c, n in backward if c == events[2])
-
-
-def watched_fit(model: torch.nn.Module, opt: torch.optim.Optimizer, loss_of, steps: int = 3) -> Trajectory:
-    """A plain watched loop of `steps` steps on a fixed batch (`loss_of()` runs the model), then the state."""
-    traj = Trajectory()
-    traj.watch(model, opt)
-    for step in range(steps):
-        opt.zero_grad()
-        loss = loss_of()
-        loss.backward()
-        opt.step()
-        traj.log(step, loss=loss)
-    traj.close()
-    traj.state(model, optimizer=opt)
-    return traj
 
 
 # -- initialisation: a kiln controller with a custom init --------------------------------------------

@@ -504,15 +504,20 @@ def test_each_planted_change_is_attributed_to_its_stage_and_step(pytester: pytes
         if expected not in text:
             wrong[test] = next((line for line in text.splitlines() if "divergence" in line), text[:300])
     assert not wrong, "attributed wrongly:\n" + "\n".join(f"{k}: {v}" for k, v in wrong.items())
-    # The tiny perturbation is within tolerance: the test passes, and the trace tells
-    # exactly where the bits first differ.
+    # The tiny perturbation is within tolerance: the test passes. A passing check keeps its light
+    # trace (no second run), so its row names the first metric step that differs ...
     assert results["test_vent_forecaster[tiny]"] == ("passed", "")
     planted.assert_outcomes(passed=1, failed=8)
     rows = {r["nodeid"]: r for r in json.loads((pytester.path / "report" / "summary.json").read_text())["rows"]}
     tiny = rows["test_greenhouse.py::test_vent_forecaster[tiny]"]
     assert tiny["outcome"] == "within tolerance"
-    assert tiny["divergence"] == ("trace: bitwise identical up to step 4, stage data (input.0); "
-                                  "within tolerance after")
+    assert tiny["divergence"] == "loss first differs at step 4 (within tolerance)"
+    # ... and with the full trace on every check, exactly where the bits first differ.
+    full = pytester.runpytest_subprocess(*flags, "--trainguard-full-trace", "--trainguard-report=full", "-k", "tiny")
+    full.assert_outcomes(passed=1)
+    rows = {r["nodeid"]: r for r in json.loads((pytester.path / "full" / "summary.json").read_text())["rows"]}
+    assert rows["test_greenhouse.py::test_vent_forecaster[tiny]"]["divergence"] == (
+        "trace: bitwise identical up to step 4, stage data (input.0); within tolerance after")
 
 
 def test_reordered_batch_is_a_data_change_not_noise():

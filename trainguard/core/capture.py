@@ -7,6 +7,7 @@ moment it is handed over (so a mistake points at the offending line) and builds 
 
 from __future__ import annotations
 
+import functools
 import numbers
 from typing import Any, Iterator, Mapping
 
@@ -52,8 +53,10 @@ def _scalar(name: str, value: Any, step: int) -> float:
 class Trajectory:
     """Collects metrics by step and the final training state of one guarded test."""
 
-    def __init__(self, max_values: int = DEFAULT_MAX_VALUES, label: str = "trajectory") -> None:
+    def __init__(self, max_values: int = DEFAULT_MAX_VALUES, label: str = "trajectory", light_trace: bool = False) -> None:
         self.max_values = max_values
+        #: `watch` keeps per-event fingerprints only (a plain check); see `trace` for the two depths.
+        self.light_trace = light_trace
         self._label = label
         self._steps: dict[str, list[int]] = {}
         self._values: dict[str, list[float]] = {}
@@ -307,7 +310,8 @@ class Trajectory:
         if all(w.optimizer is None for w in watched):
             raise UsageError("trajectory.watch: no optimizer given; a training step ends when the watched "
                              "optimizers have stepped, so pass at least one (module, optimizer) pair")
-        self._tracer = Tracer(watched, state_entries=optimizer_entries)
+        self._tracer = Tracer(watched, state_entries=functools.partial(optimizer_entries, hyperparameters=False),
+                              light=self.light_trace)
 
     def close(self) -> None:
         """Remove the trace's hooks (the fixture calls this after every test)."""
@@ -321,17 +325,21 @@ class Trajectory:
             for name in sorted(self._steps)
         }
         tensors = {name: self._tensors[name] for name in sorted(self._tensors)}
-        trace = list(self._tracer.entries) if self._tracer is not None else None
-        return Run(metrics=metrics, tensors=tensors, trace=trace)
+        tracer = self._tracer
+        trace = list(tracer.entries) if tracer is not None and not tracer.light else None
+        prints = list(tracer.prints) if tracer is not None else None
+        return Run(metrics=metrics, tensors=tensors, trace=trace, prints=prints)
 
 
-def optimizer_entries(optimizer: Any, prefix: str, names: Mapping[int, str]) -> Iterator[tuple[str, str, Any]]:
+def optimizer_entries(optimizer: Any, prefix: str, names: Mapping[int, str],
+                      hyperparameters: bool = True) -> Iterator[tuple[str, str, Any]]:
     """An optimizer's numeric hyperparameters per param group, then its state per parameter.
 
     `names` maps id(parameter) to its name; parameters it does not know are `group<g>.param<p>`.
+    The trace, which records the state after every step, leaves hyperparameters out.
     """
     for g, group in enumerate(optimizer.param_groups):
-        for key in sorted(group):
+        for key in (sorted(group) if hyperparameters else ()):
             if key == "params":
                 continue
             yield from _hyper_entries(f"{prefix}param_groups.{g}.{key}", group[key])

@@ -12,7 +12,7 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any, Callable, Sequence
 
 from . import dispatch, planting
 from .comparison import Comparison, compare
@@ -23,6 +23,7 @@ from .outcome import GuardResult
 from .records import Run, nonfinite_parts
 from .report import first_metric_difference, first_tensor_difference, render_result
 from .report_files import row_for
+from .retrace import departure
 from .settings import GuardSettings, calibrated_policy
 from .store import GoldenStore
 from .tolerance import Policy, Tolerance
@@ -30,6 +31,7 @@ from .verdicts import (
     BLESSED_CHANGED,
     BLESSED_NEW,
     BLESSED_UNCHANGED,
+    CHANGED,
     IDENTICAL,
     NO_GOLDEN,
     NONDETERMINISTIC,
@@ -199,6 +201,17 @@ class GuardRequest:
     results: GoldenStore | None = None  # --trainguard-results: where runs that did not match go
     report_dir: Path | None = None  # --trainguard-report: plots of changed trajectories go here
     ci: str | None = None  # the CI variable's value in a CI run, else None
+    #: Re-runs the test body with the full trace (the run has a light one): called by `settle` when a
+    #: check fails, or finds the run within tolerance while results are kept (see `retrace`).
+    retrace: Callable[[], Run] | None = None
+
+
+def _needs_full_trace(request: GuardRequest, run: Run, result: GuardResult) -> bool:
+    """A light-traced run gets its full trace when a report will show where it departs (a failed
+    check), or when it is kept in a results folder (from which it may be blessed)."""
+    if request.retrace is None or run.trace is not None or run.prints is None or result.comparison is None:
+        return False
+    return result.outcome == CHANGED or (request.results is not None and result.outcome != IDENTICAL)
 
 
 def settle(request: GuardRequest) -> tuple[GuardResult, dict[str, Any]]:
@@ -233,6 +246,18 @@ def settle(request: GuardRequest) -> tuple[GuardResult, dict[str, Any]]:
     elif result is None:
         result = check(nodeid, run, folder, settings.policy, base=request.base,
                        use_calibrated=not settings.marker_tolerance, store=store)
+        if _needs_full_trace(request, run, result):
+            assert request.retrace is not None
+            again = request.retrace()
+            parted = departure(run, again)
+            if not parted:
+                run = replace(run, trace=again.trace)
+                result = check(nodeid, run, folder, settings.policy, base=request.base,
+                               use_calibrated=not settings.marker_tolerance, store=store)
+            elif result.comparison is not None:
+                result.comparison.trace_note = (
+                    "trace: not recorded; the test body, run again with the full trace, did not reproduce this run "
+                    f"({parted}): the test is nondeterministic; find out why with --trainguard-repeat 3")
     result.message = render_result(result, request.commands.bless(nodeid), hints=request.repeat_hints,
                                    ci=request.ci)
     if request.results is not None and not request.bless and result.outcome not in (IDENTICAL, NONDETERMINISTIC):

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any, Mapping, Protocol
+from typing import TYPE_CHECKING, Any, Mapping, NamedTuple, Protocol
 
 import numpy as np
 
@@ -114,6 +114,16 @@ class TraceEntry(Summarized):
     sketch: np.ndarray | None = None  # small count-sketch: sees reorderings that statistics miss
 
 
+class EventPrint(NamedTuple):
+    """The fingerprint of one trace event: XXH3-64 (hex) of its tensors' names, dtypes, shapes and
+    bytes. Kept in memory only, to tell whether two runs of one body took the same path."""
+
+    step: int
+    stage: str
+    event: int
+    digest: str
+
+
 @dataclass
 class Run:
     """Everything recorded by one guarded test, plus the metadata stored beside it.
@@ -125,7 +135,8 @@ class Run:
     metrics: dict[str, MetricSeries] = field(default_factory=dict)
     tensors: dict[str, TensorRecord] = field(default_factory=dict)
     meta: GoldenMeta = field(default_factory=lambda: _meta_from({}))
-    trace: list[TraceEntry] | None = None  # present when the test called trajectory.watch
+    trace: list[TraceEntry] | None = None  # present when the test called trajectory.watch (full trace)
+    prints: list[EventPrint] | None = None  # per-event fingerprints of a watched test (never stored)
 
     def __setattr__(self, name: str, value: Any) -> None:
         if name == "meta":

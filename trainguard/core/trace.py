@@ -18,6 +18,13 @@ every watched optimizer has stepped since the last one ended (a critic stepped f
 per generator step is five update events of one step). Comparing two traces event by event
 finds the first event where two runs part, which names the culprit.
 
+Two depths. A **full** trace (at bless, with `--trainguard-repeat`, with `--trainguard-full-trace`)
+keeps one `TraceEntry` per tensor: SHA-256, statistics, a 16-value sketch. A **light** trace (a
+plain check) keeps one XXH3-64 fingerprint per event over the names, dtypes, shapes and bytes
+of its tensors, a few nanoseconds a byte: a check that finds the run identical needs no more,
+and one that does not re-runs the test body with the full trace to name the culprit. A full
+trace computes the same fingerprints, so the re-run can prove it reproduced the first run.
+
 Hooks used: forward pre-hooks and forward hooks on each watched module, step pre- and
 post-hooks on each watched optimizer, and a wrapper around `torch.Tensor.backward` (to see
 the loss and the gradients it produced; removed after the test). Closure optimizers (L-BFGS)
@@ -32,8 +39,19 @@ import numpy as np
 
 from . import checksum
 from .errors import UsageError
-from .records import TraceEntry
+from .records import EventPrint, TraceEntry
 from .text import nested_items
+
+
+def _fingerprinter() -> Callable[[], Any]:
+    try:
+        import xxhash
+
+        return xxhash.xxh3_64
+    except ImportError:  # pragma: no cover - a dependency; blake2b keeps traces working, slower
+        import hashlib
+
+        return lambda: hashlib.blake2b(digest_size=8)
 
 
 def _flatten(prefix: str, value: Any) -> Iterator[tuple[str, Any]]:
@@ -53,12 +71,20 @@ class Tracer:
     _active: Tracer | None = None
 
     def __init__(self, watched: list[Watched],
-                 state_entries: Callable[[Any, str, Mapping[int, str]], Iterator[tuple[str, str, Any]]]) -> None:
+                 state_entries: Callable[[Any, str, Mapping[int, str]], Iterator[tuple[str, str, Any]]],
+                 light: bool = False) -> None:
         import torch
 
         if Tracer._active is not None:
             raise UsageError("trajectory.watch: a trace is already running in this process; watch once per test")
+        self.light = light
         self.entries: list[TraceEntry] = []
+        self.prints: list[EventPrint] = []  # one fingerprint per event, light or full
+        self._new_print = _fingerprinter()
+        self._print = self._new_print()
+        self._stage = ""
+        self._headers: dict[tuple[str, Any, Any], bytes] = {}  # fingerprint header per (name, dtype, shape)
+        self._plans: dict[int, tuple[list[int], list[tuple[str, dict[Any, Any], Any]] | None]] = {}
         self.step = 0
         self._seq = 0
         self._event = 0
@@ -112,7 +138,13 @@ class Tracer:
 
     # -- recording -------------------------------------------------------------------
     def _add(self, stage: str, name: str, tensor: Any) -> None:
-        tensor = tensor.detach()
+        if tensor.requires_grad:
+            tensor = tensor.detach()
+        self._stage = stage
+        self._fingerprint(name, tensor)
+        if self.light:
+            self._seq += 1
+            return
         digest, st, sketch = checksum.describe(tensor, checksum.TRACE_SKETCH)
         self.entries.append(TraceEntry(
             self.step, stage, self._seq, self._event, name, str(tensor.dtype).replace("torch.", ""),
@@ -121,9 +153,29 @@ class Tracer:
         ))
         self._seq += 1
 
+    def _fingerprint(self, name: str, tensor: Any) -> None:
+        """Feed one tensor to the event's fingerprint: name, dtype, shape, then its bytes (in place
+        for a contiguous CPU tensor NumPy can view; otherwise as `checksum.tensor_bytes` gives them)."""
+        h = self._print
+        key = (name, tensor.dtype, tensor.shape)
+        header = self._headers.get(key)
+        if header is None:
+            header = self._headers[key] = f"{name}\0{tensor.dtype}\0{tuple(tensor.shape)}\0".encode()
+        h.update(header)
+        if not tensor.is_complex():
+            try:  # a contiguous CPU tensor's own bytes; NumPy refuses bfloat16, float8, GPU, conj views
+                h.update(tensor.numpy())
+                return
+            except (TypeError, RuntimeError, ValueError, BufferError):  # not viewable or not contiguous
+                pass
+        for piece in checksum.tensor_bytes(tensor):
+            h.update(piece)
+
     def _close_event(self, before: int) -> None:
         """Number the next event, if this one recorded anything."""
         if self._seq > before:
+            self.prints.append(EventPrint(self.step, self._stage, self._event, self._print.hexdigest()))
+            self._print = self._new_print()
             self._event += 1
 
     @staticmethod
@@ -198,14 +250,19 @@ class Tracer:
         for group in optimizer.param_groups:
             for param in group["params"]:
                 self._add("update", self._names.get(id(param), "unnamed"), param)
-        # Parameter names already carry their module's keyword: no second prefix.
-        for name, kind, value in self._state_entries(optimizer, "", self._names):
-            if kind == "hyperparameter":
-                continue
-            if hasattr(value, "detach"):
-                self._add("update", f"state {name}", value)
-            else:
-                self._add("update", f"state {name}", torch.as_tensor(np.asarray(value)))
+        plan = self._state_plan(optimizer)
+        if plan is not None:
+            for name, state, key in plan:
+                self._add("update", name, state[key])
+        else:
+            # Parameter names already carry their module's keyword: no second prefix.
+            for name, kind, value in self._state_entries(optimizer, "", self._names):
+                if kind == "hyperparameter":
+                    continue
+                if hasattr(value, "detach"):
+                    self._add("update", f"state {name}", value)
+                else:
+                    self._add("update", f"state {name}", torch.as_tensor(np.asarray(value)))
         self._close_event(before)
         self._stepped.add(id(optimizer))
         if self._stepped >= set(self._optimizers):
@@ -213,6 +270,43 @@ class Tracer:
             self._seq = self._event = self._losses = self._backwards = 0
             self._calls.clear()
             self._stepped.clear()
+
+    def _state_plan(self, optimizer: Any) -> list[tuple[str, dict[Any, Any], Any]] | None:
+        """Where each state tensor of `optimizer` lives, (name, state dict, key), in the order and with
+        the names `state_entries` gives, when every state value is a tensor (Adam, SGD momentum...).
+
+        Rebuilt whenever the optimizer's state changes shape (a new parameter, a key added), so each
+        step costs a lookup per tensor instead of a walk through the state; values are fetched anew
+        each step, since an optimizer may replace a state tensor rather than update it. None sends
+        the step down the general path (L-BFGS's lists, Python numbers)."""
+        shape = [len(optimizer.state)]
+        states = []
+        for group in optimizer.param_groups:
+            for param in group["params"]:
+                state = optimizer.state.get(param)
+                states.append(state)
+                shape.append(-1 if state is None else len(state))
+        cached = self._plans.get(id(optimizer))
+        if cached is not None and cached[0] == shape:
+            return cached[1]
+        plan: list[tuple[str, dict[Any, Any], Any]] | None = []
+        index = 0
+        for g, group in enumerate(optimizer.param_groups):
+            for p, param in enumerate(group["params"]):
+                state = states[index]
+                index += 1
+                pname = self._names.get(id(param), f"group{g}.param{p}")
+                for key in sorted(state or {}, key=str):
+                    if not checksum.is_tensor(state[key]):  # type: ignore[index]
+                        plan = None
+                        break
+                    plan.append((f"state {pname}.{key}", state, key))  # type: ignore[arg-type]
+                if plan is None:
+                    break
+            if plan is None:
+                break
+        self._plans[id(optimizer)] = (shape, plan)
+        return plan
 
     def param_name(self, param: Any) -> str | None:
         """The trace's name of a watched parameter (keyword prefix and `named_parameters()` name)."""

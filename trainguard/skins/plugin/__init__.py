@@ -55,6 +55,9 @@ def pytest_addoption(parser: pytest.Parser) -> None:
     group.addoption("--trainguard-repeat", metavar="N", type=int, default=1,
                     help="run the body of each guarded test N times with the same seed and settings; runs that "
                          "differ bit for bit fail as 'nondeterministic' (default 1)")
+    group.addoption("--trainguard-full-trace", action="store_true", default=False,
+                    help="record the full per-step trace of watched tests on every check (default: one fingerprint "
+                         "per event, and the body re-run with the full trace only when a check fails)")
     group.addoption("--trainguard-plant", metavar="KIND:SIZE", default=None,
                     help="trainguard calibrate's power check: bless with a small real change planted (lr:0.01 "
                          "scales every optimizer's learning rate by 1.01); the goldens are marked as scratch")
@@ -186,7 +189,9 @@ def trajectory(request: pytest.FixtureRequest) -> Iterator[Any]:
         max_values = parse_ini_int("trainguard_max_values", config.getini("trainguard_max_values"), DEFAULT_MAX_VALUES)
     except UsageError as exc:
         GuardPlugin.fail(f"{request.node.nodeid}: {exc}")
-    traj = Trajectory(max_values=max_values)
+    full_trace = (config.getoption("--trainguard-full-trace") or config.getoption("--trainguard-bless")
+                  or (config.getoption("--trainguard-repeat") or 1) > 1)
+    traj = Trajectory(max_values=max_values, light_trace=not full_trace)
     guard = GuardPlugin.of(config)
     portable = guard is not None and guard.portable
     saved = GlobalState.capture()
@@ -216,7 +221,7 @@ def trajectory(request: pytest.FixtureRequest) -> Iterator[Any]:
             from ...core import planting
 
             fp[planting.FINGERPRINT_KEY] = plant.spec
-        Pending.attach(request.node, Pending(traj, settings, fp))
+        Pending.attach(request.node, Pending(traj, settings, fp, start=GlobalState.capture()))
         if plant is None:
             yield traj
         else:

@@ -9,7 +9,7 @@ pytest-xdist) and are counted at the end.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Iterator
+from typing import TYPE_CHECKING, Any, Callable, Iterator
 
 import pytest
 
@@ -19,6 +19,7 @@ from .repeat import repeat_hints
 from .state import FIXTURE, MARKER, Pending, fail, guard_nodeid, remember_nodeid
 
 if TYPE_CHECKING:
+    from ...core.records import Run
     from ...core.store import GoldenStore
 
 __all__ = ["FIXTURE", "MARKER", "GuardPlugin", "Pending", "guard_nodeid"]
@@ -127,6 +128,7 @@ class GuardPlugin:
             results=self.store(self.resolve(results_dir)) if results_dir else None,
             report_dir=self.resolve(report_dir) if report_dir else None,
             ci=ci_value() if ci_enabled() else None,
+            retrace=retracer(item, pending) if pending.trajectory.light_trace else None,
         )
         try:
             result, row = settle(request)
@@ -154,6 +156,35 @@ class GuardPlugin:
             terminalreporter.write_line(safe_output(line))
         if self.report_path is not None:
             terminalreporter.write_line(f"report: {self.report_path}")
+
+
+def retracer(item: pytest.Item, pending: Pending) -> Callable[[], Run]:
+    """The test body once more, from the globals it started with and a fresh trajectory that keeps
+    the full trace (what `core.guard.settle` asks for when a light-traced check fails). Fixtures
+    are not set up again, as with --trainguard-repeat; a body that then takes another path is
+    reported as nondeterministic (`core.retrace.departure`)."""
+
+    def again() -> Run:
+        from ...core.capture import Trajectory
+        from ...core.records import Run
+
+        funcargs = getattr(item, "funcargs", None)
+        first = pending.trajectory
+        if pending.start is None or funcargs is None or funcargs.get(FIXTURE) is not first:
+            return Run()  # the trajectory came through another fixture: nothing to re-run; reported as parted
+        pending.start.restore()
+        fresh = Trajectory(max_values=first.max_values, light_trace=False)
+        funcargs[FIXTURE] = fresh
+        try:
+            item.runtest()  # type: ignore[attr-defined]
+        except (Exception, pytest.fail.Exception, pytest.skip.Exception):  # noqa: BLE001 - a body that fails now took another path
+            return Run()
+        finally:
+            fresh.close()
+            funcargs[FIXTURE] = first
+        return fresh.to_run()
+
+    return again
 
 
 def record_body_threads(fingerprint: dict[str, Any]) -> None:

@@ -21,8 +21,10 @@ _NODEID_KEY = pytest.StashKey[str]()
 class Pending:
     """What the fixture hands to the call-phase hook for one test."""
 
-    def __init__(self, trajectory: Trajectory, settings: GuardSettings, fingerprint: dict[str, Any]) -> None:
+    def __init__(self, trajectory: Trajectory, settings: GuardSettings, fingerprint: dict[str, Any],
+                 start: Any = None) -> None:
         self.trajectory = trajectory
+        self.start = start  # core.determinism.GlobalState the body started from (seeded, pinned): for a re-run
         self.settings = settings
         self.fingerprint = fingerprint
         self.repeats: list[Run] = []  # Runs of the repeats (--trainguard-repeat), after the first run
