@@ -45,96 +45,126 @@ def info(text: str) -> None:
     print(f"  {text}", flush=True)
 
 
-# -- 1. guard overhead ------------------------------------------------------------------
+# -- 1. guard overhead, measured the way users pay it: per-test times in one pytest session ----
 #
-# In-process, through the Python API, doing per test exactly what the plugin's fixture and
-# call hook do (GlobalState.capture, guarded_setup, environment fingerprint, Trajectory,
-# to_run, guard.check against a golden blessed beforehand, GlobalState.restore). Running
-# pytest in-process would add pytest's own per-test cost to both sides and make the ratio
-# measure pytest rather than trainguard; subprocesses would add torch's import time.
+# A generated test file holds, per snippet, a bare test (no trainguard), a guarded test that
+# records the final state, and a guarded test that also watches every step; pytest runs them
+# interleaved (bare, final, bare, trace, ...) in one session after they were blessed in another,
+# and JUnit's per-test times (setup + call + teardown) give medians per kind. Everything runs
+# on one torch thread: with two, OpenMP's busy-waiting makes timings on a shared 2-core machine
+# swing several-fold whenever anything else runs.
 
-MLP = dict(inputs=128, hidden=256, outputs=10, batch=64, steps=200)
+SNIPPETS = {
+    # name: (builder, steps, reps); builders are source text, so the same code runs bare and guarded
+    "mlp": ("mlp(128, 256)", 200, 9),              # the 200-step MLP of the issue (101,386 parameters)
+    "tiny": ("mlp(128, 256)", 1, 15),               # one step: the per-test fixed cost
+    "conv": ("conv()", 20, 5),                      # a conv net with 1.07M parameters
+    "steps10x": ("mlp(128, 256)", 2000, 3),        # 10x the steps
+    "params10x": ("mlp(128, 950)", 200, 3),        # 10x the parameters (1,034,460)
+}
+
+_GUARD_HEAD = '''
+import pytest
+import torch
+
+torch.set_num_threads(1)
 
 
-def _snippet(traj=None, watch: bool = False):
-    import torch
+def mlp(inputs, hidden):
+    model = torch.nn.Sequential(torch.nn.Linear(inputs, hidden), torch.nn.ReLU(), torch.nn.Linear(hidden, hidden),
+                                torch.nn.ReLU(), torch.nn.Linear(hidden, 10))
+    x = torch.randn(64 * 8, inputs)
+    y = (x @ torch.randn(inputs, 10)).argmax(dim=1)  # a made-up task: the nearest of 10 random directions
+    return model, x, y
 
+
+def conv():
+    model = torch.nn.Sequential(torch.nn.Conv2d(3, 32, 3, padding=1), torch.nn.ReLU(), torch.nn.MaxPool2d(2),
+                                torch.nn.Conv2d(32, 64, 3, padding=1), torch.nn.ReLU(), torch.nn.MaxPool2d(2),
+                                torch.nn.Flatten(), torch.nn.Linear(64 * 8 * 8, 256), torch.nn.ReLU(),
+                                torch.nn.Linear(256, 10))
+    x = torch.randn(64 * 8, 3, 32, 32)  # invented 32x32 "tile photos" of a tram depot floor
+    y = x.mean(dim=(2, 3)).argmax(dim=1)
+    return model, x, y
+
+
+def train(build, steps, traj=None, watch=False):
     torch.manual_seed(0)
-    model = torch.nn.Sequential(torch.nn.Linear(MLP["inputs"], MLP["hidden"]), torch.nn.ReLU(),
-                                torch.nn.Linear(MLP["hidden"], MLP["hidden"]), torch.nn.ReLU(),
-                                torch.nn.Linear(MLP["hidden"], MLP["outputs"]))
+    model, x, y = build()
     opt = torch.optim.Adam(model.parameters(), lr=1e-3)
-    # A made-up task: classify points by which of 10 random directions they are closest to.
-    x = torch.randn(MLP["batch"] * 8, MLP["inputs"])
-    y = (x @ torch.randn(MLP["inputs"], MLP["outputs"])).argmax(dim=1)
     if watch:
         traj.watch(model, opt)
-    for step in range(MLP["steps"]):
-        i = (step % 8) * MLP["batch"]
+    for step in range(steps):
+        i = (step % 8) * 64
         opt.zero_grad()
-        loss = torch.nn.functional.cross_entropy(model(x[i : i + MLP["batch"]]), y[i : i + MLP["batch"]])
+        loss = torch.nn.functional.cross_entropy(model(x[i : i + 64]), y[i : i + 64])
         loss.backward()
         opt.step()
         if traj is not None:
             traj.log(step, loss=loss)
     if traj is not None:
         traj.state(model, optimizer=opt)
-    return model
+'''
 
 
-def _guarded(folder: Path, watch: bool, bless: bool = False) -> str:
-    from trainguard.core import guard
-    from trainguard.core.capture import Trajectory
-    from trainguard.core.determinism import GlobalState, guarded_setup
-    from trainguard.core.environment import fingerprint
-    from trainguard.core.tolerance import Policy
-
-    saved = GlobalState.capture()
-    try:
-        guarded_setup(0, True)
-        fp = fingerprint()
-        traj = Trajectory()
-        try:
-            _snippet(traj, watch)
-        finally:
-            traj.close()
-        run = traj.to_run()
-        run.meta = {"nodeid": "bench::mlp", "seed": 0, "deterministic": True, "tolerances": Policy().to_json(),
-                    "max_values": traj.max_values, "fingerprint": fp, "blessed_at": "", "reason": "benchmark"}
-        if bless:
-            return guard.bless("bench::mlp", run, folder, Policy()).outcome
-        result = guard.check("bench::mlp", run, folder, Policy(), "bless")
-        return result.outcome
-    finally:
-        saved.restore()
+def _guard_suite(snippets: dict[str, tuple[str, int, int]], quick: bool) -> str:
+    parts = [_GUARD_HEAD]
+    for name, (builder, steps, reps) in snippets.items():
+        for r in range(1 if quick else reps):
+            call = f"train(lambda: {builder}, {steps}"
+            parts.append(f"def test_{name}_bare_{r}():\n    {call})\n")
+            parts.append(f"@pytest.mark.trainguard(seed=0)\ndef test_{name}_final_{r}(trajectory):\n"
+                         f"    {call}, trajectory)\n")
+            parts.append(f"def test_{name}_bareb_{r}():\n    {call})\n")
+            parts.append(f"@pytest.mark.trainguard(seed=0)\ndef test_{name}_trace_{r}(trajectory):\n"
+                         f"    {call}, trajectory, watch=True)\n")
+    return "\n\n".join(parts)
 
 
-def bench_overhead(reps: int) -> None:
-    print("1. guard overhead: 200-step MLP snippet, guarded vs bare (same process, after warm-up)", flush=True)
-    import torch
+def bench_overhead(quick: bool) -> None:
+    import re
+    import xml.etree.ElementTree as ET
 
-    # One intra-op thread: with two, OpenMP's busy-waiting makes timings on a shared
-    # 2-core machine swing by several times whenever anything else runs.
-    torch.set_num_threads(1)
+    print("1. guard overhead: per-test times (JUnit) in one pytest session, bare vs guarded, interleaved", flush=True)
     with tempfile.TemporaryDirectory() as tmp:
-        plain, traced = Path(tmp) / "final", Path(tmp) / "trace"
-        _guarded(plain, False, bless=True)
-        _guarded(traced, True, bless=True)
-        assert _guarded(plain, False) == "identical" and _guarded(traced, True) == "identical"
-        _snippet()
-        bare, final, trace = [], [], []
-        for _ in range(reps):
-            for fn, out in ((lambda: _snippet(), bare), (lambda: _guarded(plain, False), final),
-                            (lambda: _snippet(), bare), (lambda: _guarded(traced, True), trace)):
-                t0 = time.perf_counter()
-                fn()
-                out.append(time.perf_counter() - t0)
-    b = statistics.median(bare)
-    info(f"MLP {MLP['inputs']}-{MLP['hidden']}-{MLP['hidden']}-{MLP['outputs']}, batch {MLP['batch']}, Adam, "
-         f"{MLP['steps']} steps, torch threads {torch.get_num_threads()}; bare median {b * 1e3:.0f} ms")
-    f, t = statistics.median(final), statistics.median(trace)
-    report("1", "guarded (final state) / bare", f / b, 1.05, f"+{(f - b) * 1e3:.0f} ms per test")
-    report("1", "guarded (per-step trace) / bare", t / b, 1.30, f"+{(t - b) * 1e3:.0f} ms per test")
+        Path(tmp, "test_guard.py").write_text(_guard_suite(SNIPPETS, quick))
+        Path(tmp, "pytest.ini").write_text("[pytest]\n")
+        base = [sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", "-p", "no:randomly", "-p", "no:xdist",
+                "--trainguard-threads", "1"]
+        bless = subprocess.run(base + ["--trainguard-bless", "--trainguard-reason", "benchmark", "-k", "final or trace"],
+                               cwd=tmp, capture_output=True, text=True)
+        if bless.returncode:
+            raise RuntimeError(bless.stdout[-3000:] + bless.stderr[-3000:])
+        proc = subprocess.run(base + ["--junitxml=times.xml"], cwd=tmp, capture_output=True, text=True)
+        if proc.returncode or "identical" not in proc.stdout:
+            raise RuntimeError(proc.stdout[-3000:] + proc.stderr[-3000:])
+        times: dict[tuple[str, str], list[float]] = {}
+        for case in ET.parse(Path(tmp, "times.xml")).iter("testcase"):
+            m = re.fullmatch(r"test_(\w+?)_(bare|bareb|final|trace)_\d+", case.get("name", ""))
+            if m:
+                kind = "bare" if m.group(2) == "bareb" else m.group(2)
+                times.setdefault((m.group(1), kind), []).append(float(case.get("time", "nan")))
+    med = {k: statistics.median(v) for k, v in times.items()}
+    extra = {name: {kind: med[(name, kind)] - med[(name, "bare")] for kind in ("final", "trace")} for name in SNIPPETS}
+    for name, (builder, steps, _) in SNIPPETS.items():
+        info(f"{name}: {builder}, {steps} steps: bare {med[(name, 'bare')] * 1e3:.0f} ms, final "
+             f"{med[(name, 'final')] * 1e3:.0f} ms, trace {med[(name, 'trace')] * 1e3:.0f} ms "
+             f"({len(times[(name, 'final')])} of each)")
+    mlp = med[("mlp", "bare")]
+    report("1", "guarded (final state) / bare, 200-step MLP", med[("mlp", "final")] / mlp, 1.03,
+           f"+{extra['mlp']['final'] * 1e3:.1f} ms per test")
+    report("1", "fixed per-test cost, ms (1-step MLP, guarded - bare)", extra["tiny"]["final"] * 1e3, 10,
+           "medians of JUnit times")
+    report("2", "guarded (per-step trace) / bare, 200-step MLP", med[("mlp", "trace")] / mlp, 1.30,
+           f"+{extra['mlp']['trace'] * 1e3:.0f} ms per test")
+    report("2", "guarded (per-step trace) / bare, conv net 1.07M params", med[("conv", "trace")] / med[("conv", "bare")],
+           1.50, f"+{extra['conv']['trace'] * 1e3:.0f} ms per test")
+    for name, what in (("steps10x", "10x steps"), ("params10x", "10x parameters")):
+        for kind in ("final", "trace"):
+            growth = extra[name][kind] / extra["mlp"][kind] if extra["mlp"][kind] > 0 else float("nan")
+            report("6", f"guard cost growth at {what} ({kind}); linear = 10", growth, 10.0,
+                   f"+{extra['mlp'][kind] * 1e3:.1f} -> +{extra[name][kind] * 1e3:.1f} ms; guarded / bare "
+                   f"{med[(name, kind)] / med[(name, 'bare')]:.3f}")
 
 
 # -- 2. checksums of a 100M-parameter model ------------------------------------------------
@@ -415,7 +445,7 @@ def main(argv: list[str] | None = None) -> int:
     env = machine()
     print("machine: " + ", ".join(f"{k} {v}" for k, v in env.items()), flush=True)
     if "overhead" in only:
-        bench_overhead(3 if q else 9)
+        bench_overhead(q)
     if "checksum" in only:
         bench_checksum(1 if q else 3)
     if "size" in only:

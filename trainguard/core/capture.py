@@ -225,10 +225,14 @@ class Trajectory:
             shape = tuple(int(d) for d in array.shape)
             numel = int(array.size)
         keep_values = numel <= self.max_values
-        # One call: for large tensors the digest is computed in a background thread while the
-        # statistics and sketch are computed here (same results as separate calls).
-        digest, st, sketch = checksum.describe(array, 0 if keep_values else checksum.STATE_SKETCH)
-        values = checksum.values_float64(array) if keep_values else None
+        if keep_values:  # the float64 copy that is stored also gives the statistics: one conversion, not two
+            values = checksum.values_float64(array)
+            digest, (st, sketch) = checksum.sha256_hex(array), checksum.summarize(values)
+        else:
+            # One call: for large tensors the digest is computed in a background thread while the
+            # statistics and sketch are computed here (same results as separate calls).
+            values = None
+            digest, st, sketch = checksum.describe(array, checksum.STATE_SKETCH)
         return TensorRecord(
             name=name,
             kind=kind,

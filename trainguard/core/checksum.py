@@ -372,7 +372,7 @@ def values_float64(data: Any) -> np.ndarray:
         tensor = data.detach()
         if tensor.is_complex():
             tensor = torch.view_as_real(tensor)
-        return tensor.reshape(-1).to(device="cpu", dtype=torch.float64).numpy().copy()
+        return tensor.reshape(-1).to(device="cpu", dtype=torch.float64, copy=True).numpy()  # never the tensor's own memory
     array = np.asarray(data)
     if np.iscomplexobj(array):
         array = np.stack([array.real, array.imag], axis=-1)
