@@ -56,11 +56,11 @@ def info(text: str) -> None:
 
 SNIPPETS = {
     # name: (builder, steps, reps); builders are source text, so the same code runs bare and guarded
-    "mlp": ("mlp(128, 256)", 200, 9),              # the 200-step MLP of the issue (101,386 parameters)
-    "tiny": ("mlp(128, 256)", 1, 15),               # one step: the per-test fixed cost
+    "mlp": ("mlp(128, 256)", 200, 15),              # the 200-step MLP of the issue (101,386 parameters)
+    "tiny": ("mlp(128, 256)", 1, 25),               # one step: the per-test fixed cost
     "conv": ("conv()", 20, 5),                      # a conv net with 1.07M parameters
-    "steps10x": ("mlp(128, 256)", 2000, 3),        # 10x the steps
-    "params10x": ("mlp(128, 950)", 200, 3),        # 10x the parameters (1,034,460)
+    "steps10x": ("mlp(128, 256)", 2000, 5),        # 10x the steps
+    "params10x": ("mlp(128, 950)", 200, 5),        # 10x the parameters (1,034,460)
 }
 
 _GUARD_HEAD = '''
@@ -138,18 +138,30 @@ def bench_overhead(quick: bool) -> None:
         proc = subprocess.run(base + ["--junitxml=times.xml"], cwd=tmp, capture_output=True, text=True)
         if proc.returncode or "identical" not in proc.stdout:
             raise RuntimeError(proc.stdout[-3000:] + proc.stderr[-3000:])
-        times: dict[tuple[str, str], list[float]] = {}
+        times: dict[tuple[str, str], dict[int, float]] = {}
         for case in ET.parse(Path(tmp, "times.xml")).iter("testcase"):
-            m = re.fullmatch(r"test_(\w+?)_(bare|bareb|final|trace)_\d+", case.get("name", ""))
+            m = re.fullmatch(r"test_(\w+?)_(bare|bareb|final|trace)_(\d+)", case.get("name", ""))
             if m:
-                kind = "bare" if m.group(2) == "bareb" else m.group(2)
-                times.setdefault((m.group(1), kind), []).append(float(case.get("time", "nan")))
-    med = {k: statistics.median(v) for k, v in times.items()}
-    extra = {name: {kind: med[(name, kind)] - med[(name, "bare")] for kind in ("final", "trace")} for name in SNIPPETS}
+                times.setdefault((m.group(1), m.group(2)), {})[int(m.group(3))] = float(case.get("time", "nan"))
+    # Each guarded test is paired with the bare test run just before it (final with bare, trace with
+    # bareb): the median of those differences follows the machine's drift far better than a
+    # difference of medians, on a machine whose other jobs come and go.
+    med: dict[tuple[str, str], float] = {}
+    extra: dict[str, dict[str, float]] = {}
+    for name in SNIPPETS:
+        bare = {**{("a", r): t for r, t in times[(name, "bare")].items()},
+                **{("b", r): t for r, t in times[(name, "bareb")].items()}}
+        med[(name, "bare")] = statistics.median(bare.values())
+        extra[name] = {}
+        for kind, partner in (("final", "bare"), ("trace", "bareb")):
+            diffs = [t - times[(name, partner)][r] for r, t in times[(name, kind)].items()]
+            extra[name][kind] = statistics.median(diffs)
+            med[(name, kind)] = med[(name, "bare")] + extra[name][kind]
+            times[(name, kind + "_n")] = {0: len(diffs)}
     for name, (builder, steps, _) in SNIPPETS.items():
         info(f"{name}: {builder}, {steps} steps: bare {med[(name, 'bare')] * 1e3:.0f} ms, final "
              f"{med[(name, 'final')] * 1e3:.0f} ms, trace {med[(name, 'trace')] * 1e3:.0f} ms "
-             f"({len(times[(name, 'final')])} of each)")
+             f"(medians of {int(times[(name, 'final_n')][0])} paired differences)")
     mlp = med[("mlp", "bare")]
     report("1", "guarded (final state) / bare, 200-step MLP", med[("mlp", "final")] / mlp, 1.03,
            f"+{extra['mlp']['final'] * 1e3:.1f} ms per test")
@@ -176,6 +188,10 @@ import hashlib, json, os, sys, time
 sys.path.insert(0, {repo!r})
 import numpy as np, torch
 mode = {mode!r}
+cores = {cores!r}
+if cores == 1 and hasattr(os, "sched_setaffinity"):
+    os.sched_setaffinity(0, {{sorted(os.sched_getaffinity(0))[0]}})
+    torch.set_num_threads(1)
 torch.manual_seed(0)
 model = torch.nn.Sequential(*[torch.nn.Linear(i, o) for o, i in {shapes!r}])
 from trainguard.core import checksum
@@ -183,6 +199,11 @@ from trainguard.core import store as golden
 from trainguard.core.capture import Trajectory
 import tempfile
 Trajectory().state(w=torch.ones(3))  # warm-up: imports, caches of small sizes
+known = None
+if mode == "check":  # what a check knows before the body runs: the golden's records (from a light read)
+    blessed = Trajectory()
+    blessed.state(model)
+    known = blessed.to_run().tensors
 def status(key):
     for line in open("/proc/self/status"):
         if line.startswith(key):
@@ -202,8 +223,9 @@ if mode == "hashlib":
 elif mode == "checksum":
     for p in model.parameters():
         checksum.sha256_hex(p)
-elif mode == "full":
+elif mode in ("full", "check"):
     traj = Trajectory()
+    traj.known = known
     traj.state(model)
     run = traj.to_run()
 out["seconds"] = time.perf_counter() - t0
@@ -217,8 +239,8 @@ print(json.dumps(out))
 """
 
 
-def _child(mode: str) -> dict:
-    code = _CHILD.format(repo=str(REPO), mode=mode, shapes=BIG_SHAPES)
+def _child(mode: str, cores: int = 2) -> dict:
+    code = _CHILD.format(repo=str(REPO), mode=mode, shapes=BIG_SHAPES, cores=cores)
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
     if proc.returncode:
         raise RuntimeError(f"child {mode} failed:\n{proc.stderr[-3000:]}")
@@ -226,28 +248,35 @@ def _child(mode: str) -> dict:
 
 
 def bench_checksum(reps: int) -> None:
-    print("2. state checksums of a 100M-parameter float32 model, vs hashlib.sha256 on the same bytes", flush=True)
-    runs: dict[str, list[dict]] = {"hashlib": [], "checksum": [], "full": []}
-    for _ in range(reps):
-        for mode in runs:
-            runs[mode].append(_child(mode))
-    med = {m: statistics.median(r["seconds"] for r in rs) for m, rs in runs.items()}
-    params = runs["hashlib"][0]["params"]
-    nbytes = params * 4
-    info(f"{params:,} float32 parameters ({nbytes / 2**20:.0f} MiB); hashlib {nbytes / med['hashlib'] / 1e6:.0f} MB/s, "
-         f"trainguard checksum {nbytes / med['checksum'] / 1e6:.0f} MB/s, full recording "
-         f"{nbytes / med['full'] / 1e6:.0f} MB/s (medians of {reps} fresh processes each)")
-    report("2", "checksum only throughput / hashlib", med["hashlib"] / med["checksum"], 0.90,
-           "trainguard.checksum.sha256_hex per parameter", higher_is_better=True)
-    report("2", "full state recording throughput / hashlib", med["hashlib"] / med["full"], 0.90,
-           "Trajectory.state(model): SHA-256 + float64 statistics + 256-value sketch", higher_is_better=True)
-    for mode in ("checksum", "full"):
-        peak = max(r["peak"] for r in runs[mode]) / 2**20
-        reset = all(r["reset"] for r in runs[mode])
-        report("2", f"peak memory over the model, {mode} (MiB)", peak, 64,
-               "VmHWM - VmRSS before, fresh subprocess" + ("" if reset else " (VmHWM could not be reset)"))
-    state_bytes = runs["full"][0]["state_bytes"]
-    report("3", "state.parquet of the 100M model (MiB)", state_bytes / 2**20, 1.0, f"{state_bytes:,} bytes")
+    print("3. state recording of a 100M-parameter float32 model, vs hashlib.sha256 on the same bytes", flush=True)
+    modes = ("hashlib", "checksum", "full", "check")
+    for cores in (2, 1):
+        runs: dict[str, list[dict]] = {m: [] for m in modes}
+        for _ in range(reps):
+            for mode in modes:  # interleaved, a fresh process each
+                runs[mode].append(_child(mode, cores))
+        med = {m: statistics.median(r["seconds"] for r in rs) for m, rs in runs.items()}
+        params = runs["hashlib"][0]["params"]
+        nbytes = params * 4
+        info(f"{cores} core(s): {params:,} float32 parameters ({nbytes / 2**20:.0f} MiB); hashlib "
+             f"{nbytes / med['hashlib'] / 1e6:.0f} MB/s, checksum {nbytes / med['checksum'] / 1e6:.0f} MB/s, full "
+             f"recording {nbytes / med['full'] / 1e6:.0f} MB/s, check-time recording {nbytes / med['check'] / 1e6:.0f} "
+             f"MB/s (medians of {reps} fresh processes each)")
+        report("3", f"checksum only / hashlib, {cores} core(s)", med["hashlib"] / med["checksum"], 0.90,
+               "trainguard.checksum.sha256_hex per parameter", higher_is_better=True)
+        report("3", f"full recording (bless) / hashlib, {cores} core(s)", med["hashlib"] / med["full"], 0.90,
+               "Trajectory.state(model): SHA-256 + float64 statistics + 1024-value sketch", higher_is_better=True)
+        report("3", f"check-time recording / hashlib, {cores} core(s)", med["hashlib"] / med["check"], 0.90,
+               "Trajectory.state(model) knowing the golden: SHA-256, statistics and sketch reused when it matches",
+               higher_is_better=True)
+        if cores == 2:
+            for mode in ("checksum", "full", "check"):
+                peak = max(r["peak"] for r in runs[mode]) / 2**20
+                reset = all(r["reset"] for r in runs[mode])
+                report("3", f"peak memory over the model, {mode} (MiB)", peak, 64,
+                       "VmHWM - VmRSS before, fresh subprocess" + ("" if reset else " (VmHWM could not be reset)"))
+            state_bytes = runs["full"][0]["state_bytes"]
+            report("-", "state.parquet of the 100M model (MiB)", state_bytes / 2**20, 1.0, f"{state_bytes:,} bytes")
 
 
 # -- 3. golden size of a long trajectory ---------------------------------------------------

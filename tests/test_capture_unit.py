@@ -605,3 +605,35 @@ def test_a_scalar_dtype_change_is_a_change_even_for_a_representable_value():
     b.state(oven_temp=np.float64(1.5))  # the same number, exactly representable in both
     cmp = compare(a.to_run(), b.to_run(), Policy())
     assert cmp.outcome == CHANGED and cmp.tensors[0].reasons == ["dtype float32 -> float64"]
+
+
+def test_a_check_records_a_large_entry_matching_its_golden_by_hashing_alone():
+    """With the golden's records known, a large entry whose SHA-256 (checked with hashlib) matches takes
+    statistics and sketch from the golden: the marked statistics below prove nothing was summarized."""
+    import hashlib
+    from dataclasses import replace as dc_replace
+
+    import torch
+
+    from trainguard.core import checksum
+
+    torch.manual_seed(2)
+    weights = torch.randn(300, 400)  # 120,000 values: over the default 65,536, so a sketch stands in
+    golden = Trajectory()
+    golden.state(kiln_fan=weights)
+    record = golden.to_run().tensors["kiln_fan"]
+    assert record.values is None and record.sha256 == hashlib.sha256(weights.numpy().tobytes()).hexdigest()
+    marked = dc_replace(record, min=-123.0)
+    again = Trajectory()
+    again.known = {"kiln_fan": marked}
+    again.state(kiln_fan=weights.clone())
+    assert again.to_run().tensors["kiln_fan"].min == -123.0  # same bits: the golden's derived values
+    moved = weights.clone()
+    moved[7, 9] += 1.0
+    third = Trajectory()
+    third.known = {"kiln_fan": marked}
+    third.state(kiln_fan=moved)
+    got = third.to_run().tensors["kiln_fan"]
+    st, sketch = checksum.summarize(moved, checksum.STATE_SKETCH)
+    assert got.sha256 == hashlib.sha256(moved.numpy().tobytes()).hexdigest() != record.sha256
+    assert got.min == st.min == float(moved.min()) and np.array_equal(got.sketch, sketch)

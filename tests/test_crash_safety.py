@@ -48,6 +48,7 @@ def _kill(proc) -> None:
     assert proc.exitcode == -9
 
 
+@pytest.mark.slow  # 36 s: outside the fast subset (README)
 def test_sigkill_at_random_points_leaves_every_golden_whole(ctx, tmp_path):
     folders = [tmp_path / "golden" / f"test_loaf_{i}" for i in range(FOLDERS)]
     for folder in folders:
@@ -85,6 +86,7 @@ def test_sigkill_at_random_points_leaves_every_golden_whole(ctx, tmp_path):
         assert {file_tag(folder / n) for n in ("metrics.parquet", "state.parquet")} == {"run B"}
 
 
+@pytest.mark.slow
 def test_two_concurrent_writers_and_a_reader_never_see_a_mixed_set(ctx, tmp_path):
     folders = [tmp_path / "golden" / f"test_crust_{i}" for i in range(FOLDERS)]
     for folder in folders:

@@ -31,6 +31,8 @@ from trainguard.core import store as golden
 from trainguard.core.errors import TrainguardError
 from trainguard.core.meta import GoldenMeta
 
+pytestmark = pytest.mark.slow  # 2,000 mutated goldens, about 50 s of CPU: outside the fast subset (README)
+
 EXAMPLES = 500
 FUZZ = settings(max_examples=EXAMPLES, deadline=None, derandomize=True, database=None,
                 suppress_health_check=list(HealthCheck))

@@ -49,7 +49,8 @@ def display_path(folder: Path, base: Path | None) -> str:
 
 
 def check(nodeid: str, run: Run, folder: Path, policy: Policy, bless_command: str | None = None,
-          base: Path | None = None, use_calibrated: bool = True, store: GoldenStore | None = None) -> GuardResult:
+          base: Path | None = None, use_calibrated: bool = True, store: GoldenStore | None = None,
+          light: Run | None = None) -> GuardResult:
     """Compare `run` against the golden in `folder`. Never writes anything.
 
     Parameters
@@ -74,7 +75,7 @@ def check(nodeid: str, run: Run, folder: Path, policy: Policy, bless_command: st
     store = store if store is not None else GoldenStore(folder)
     shown = display_path(folder, base)
     try:
-        reference = store.read(folder, light=True)
+        reference = light if light is not None else store.read(folder, light=True)
     except GoldenMissingError:
         result = GuardResult(nodeid, shown, NO_GOLDEN, run=run)
     except TrainguardError as exc:
@@ -204,6 +205,8 @@ class GuardRequest:
     #: Re-runs the test body with the full trace (the run has a light one): called by `settle` when a
     #: check fails, or finds the run within tolerance while results are kept (see `retrace`).
     retrace: Callable[[], Run] | None = None
+    #: The golden as a light read made before the body ran (`Trajectory.known` came from it), reused by the check.
+    reference: Run | None = None
 
 
 def _needs_full_trace(request: GuardRequest, run: Run, result: GuardResult) -> bool:
@@ -245,7 +248,7 @@ def settle(request: GuardRequest) -> tuple[GuardResult, dict[str, Any]]:
                               + (f" and {len(nonfinite) - 5} more" if len(nonfinite) > 5 else ""))
     elif result is None:
         result = check(nodeid, run, folder, settings.policy, base=request.base,
-                       use_calibrated=not settings.marker_tolerance, store=store)
+                       use_calibrated=not settings.marker_tolerance, store=store, light=request.reference)
         if _needs_full_trace(request, run, result):
             assert request.retrace is not None
             again = request.retrace()

@@ -79,6 +79,17 @@ class GuardPlugin:
         return GoldenStore(root, max_bytes=max_bytes_from_ini(self.config.getini("trainguard_max_file_mib")),
                            commands=self.commands)
 
+    def light_golden(self, item: pytest.Item) -> Run | None:
+        """The test's golden read light (checksums, statistics, sketches; no stored values, no trace),
+        before its body runs; None when there is none or it cannot be read (the check says why)."""
+        from ...core.errors import TrainguardError
+
+        store = self.store(self.golden_dir())
+        try:
+            return store.read(store.folder(guard_nodeid(item)), light=True)
+        except (TrainguardError, OSError):
+            return None
+
     # -- hooks -----------------------------------------------------------------------
     def pytest_itemcollected(self, item: pytest.Item) -> None:
         # Remember the node id as collected: with --dist loadgroup, pytest-xdist (on pytest < 9.2)
@@ -129,6 +140,7 @@ class GuardPlugin:
             report_dir=self.resolve(report_dir) if report_dir else None,
             ci=ci_value() if ci_enabled() else None,
             retrace=retracer(item, pending) if pending.trajectory.light_trace else None,
+            reference=pending.reference,
         )
         try:
             result, row = settle(request)

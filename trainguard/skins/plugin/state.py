@@ -25,6 +25,7 @@ class Pending:
                  start: Any = None) -> None:
         self.trajectory = trajectory
         self.start = start  # core.determinism.GlobalState the body started from (seeded, pinned): for a re-run
+        self.reference: Run | None = None  # the golden, read light before the body ran (a check only)
         self.settings = settings
         self.fingerprint = fingerprint
         self.repeats: list[Run] = []  # Runs of the repeats (--trainguard-repeat), after the first run
