@@ -42,8 +42,9 @@ def test_a_light_trace_keeps_one_fingerprint_per_event_and_the_full_trace_the_sa
     assert departure(light, full) == ""
 
 
-def test_an_event_fingerprint_is_xxh3_over_names_dtypes_shapes_and_bytes():
-    """Recomputed from the tensors with the xxhash package: the init event of a Linear(4, 8) + Linear(8, 1)."""
+def test_an_event_fingerprint_is_xxh3_over_names_dtypes_shapes_and_the_bytes_that_decide_the_path():
+    """Recomputed with the xxhash package: the init event of a Linear(4, 8) + Linear(8, 1) (bytes included),
+    and its first backward event (names, dtypes, shapes only)."""
     torch.manual_seed(11)
     model = torch.nn.Sequential(torch.nn.Linear(4, 8), torch.nn.Tanh(), torch.nn.Linear(8, 1))
     expected = xxhash.xxh3_64()
@@ -51,11 +52,20 @@ def test_an_event_fingerprint_is_xxh3_over_names_dtypes_shapes_and_bytes():
         expected.update(f"{name}\0{param.dtype}\0{tuple(param.shape)}\0".encode())
         expected.update(param.detach().numpy().tobytes())
     traj = Trajectory(light_trace=True)
-    traj.watch(model, torch.optim.SGD(model.parameters(), lr=0.1))
+    opt = torch.optim.SGD(model.parameters(), lr=0.1)
+    traj.watch(model, opt)
+    model(torch.ones(2, 4)).pow(2).mean().backward()
+    grads = xxhash.xxh3_64()  # a gradient event: names, dtypes and shapes only (they reach the update's bytes)
+    for name, param in model.named_parameters():
+        grads.update(f"grad {name}\0{param.grad.dtype}\0{tuple(param.grad.shape)}\0".encode())
+    opt.step()
     traj.close()
-    first = traj.to_run().prints[0]
+    prints = traj.to_run().prints
+    first = prints[0]
     assert (first.step, first.stage, first.event) == (0, "init", 0)
     assert first.digest == expected.hexdigest()
+    backward = next(p for p in prints if p.stage == "backward")
+    assert backward.digest == grads.hexdigest()
 
 
 def test_departure_names_where_a_second_run_parts():

@@ -20,8 +20,8 @@ finds the first event where two runs part, which names the culprit.
 
 Two depths. A **full** trace (at bless, with `--trainguard-repeat`, with `--trainguard-full-trace`)
 keeps one `TraceEntry` per tensor: SHA-256, statistics, a 16-value sketch. A **light** trace (a
-plain check) keeps one XXH3-64 fingerprint per event over the names, dtypes, shapes and bytes
-of its tensors, a few nanoseconds a byte: a check that finds the run identical needs no more,
+plain check) keeps one XXH3-64 fingerprint per event over the names, dtypes, shapes of its
+tensors and the bytes of the weights, losses and updated parameters (see `_fingerprint`): a check that finds the run identical needs no more,
 and one that does not re-runs the test body with the full trace to name the culprit. A full
 trace computes the same fingerprints, so the re-run can prove it reproduced the first run.
 
@@ -137,11 +137,11 @@ class Tracer:
         Tracer._active = self
 
     # -- recording -------------------------------------------------------------------
-    def _add(self, stage: str, name: str, tensor: Any) -> None:
+    def _add(self, stage: str, name: str, tensor: Any, content: bool = False) -> None:
         if tensor.requires_grad:
             tensor = tensor.detach()
         self._stage = stage
-        self._fingerprint(name, tensor)
+        self._fingerprint(name, tensor, content)
         if self.light:
             self._seq += 1
             return
@@ -153,15 +153,23 @@ class Tracer:
         ))
         self._seq += 1
 
-    def _fingerprint(self, name: str, tensor: Any) -> None:
-        """Feed one tensor to the event's fingerprint: name, dtype, shape, then its bytes (in place
-        for a contiguous CPU tensor NumPy can view; otherwise as `checksum.tensor_bytes` gives them)."""
+    def _fingerprint(self, name: str, tensor: Any, content: bool) -> None:
+        """Feed one tensor to the event's fingerprint: name, dtype, shape, and with `content` its bytes
+        (in place for a contiguous CPU tensor NumPy can view; else as `checksum.tensor_bytes` gives them).
+
+        Bytes are fed for the weights at `watch`, every loss, and the parameters after every update:
+        inputs, outputs, gradients and optimizer state all reach the next parameters, so a run that
+        takes another path differs there within the step, at a quarter of the bytes. The fingerprint
+        only has to tell whether two runs of one body took the same path; the full trace of the
+        second run says where a run departs from its golden."""
         h = self._print
         key = (name, tensor.dtype, tensor.shape)
         header = self._headers.get(key)
         if header is None:
             header = self._headers[key] = f"{name}\0{tensor.dtype}\0{tuple(tensor.shape)}\0".encode()
         h.update(header)
+        if not content:
+            return
         if not tensor.is_complex():
             try:  # a contiguous CPU tensor's own bytes; NumPy refuses bfloat16, float8, GPU, conj views
                 h.update(tensor.numpy())
@@ -188,9 +196,9 @@ class Tracer:
             if w.module is None:
                 continue
             for name, param in w.module.named_parameters():
-                self._add("init", w.prefix + name, param)
+                self._add("init", w.prefix + name, param, content=True)
             for name, buf in w.module.named_buffers():
-                self._add("init", w.prefix + name, buf)
+                self._add("init", w.prefix + name, buf, content=True)
         self._close_event(before)
 
     def _input_hook(self, w: Watched) -> Callable[..., None]:
@@ -216,7 +224,7 @@ class Tracer:
 
     def _on_loss(self, tensor: Any) -> None:
         before = self._seq
-        self._add("forward", "loss" + self._suffix(self._losses), tensor)
+        self._add("forward", "loss" + self._suffix(self._losses), tensor, content=True)
         self._losses += 1
         self._close_event(before)
 
@@ -249,7 +257,7 @@ class Tracer:
         before = self._seq
         for group in optimizer.param_groups:
             for param in group["params"]:
-                self._add("update", self._names.get(id(param), "unnamed"), param)
+                self._add("update", self._names.get(id(param), "unnamed"), param, content=True)
         plan = self._state_plan(optimizer)
         if plan is not None:
             for name, state, key in plan:

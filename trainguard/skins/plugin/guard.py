@@ -186,6 +186,7 @@ def retracer(item: pytest.Item, pending: Pending) -> Callable[[], Run]:
             return Run()  # the trajectory came through another fixture: nothing to re-run; reported as parted
         pending.start.restore()
         fresh = Trajectory(max_values=first.max_values, light_trace=False)
+        fresh.known = first.known
         funcargs[FIXTURE] = fresh
         try:
             item.runtest()  # type: ignore[attr-defined]
