@@ -637,3 +637,29 @@ def test_a_check_records_a_large_entry_matching_its_golden_by_hashing_alone():
     st, sketch = checksum.summarize(moved, checksum.STATE_SKETCH)
     assert got.sha256 == hashlib.sha256(moved.numpy().tobytes()).hexdigest() != record.sha256
     assert got.min == st.min == float(moved.min()) and np.array_equal(got.sketch, sketch)
+
+
+def test_a_small_entry_matching_its_golden_is_hashed_alone_and_gets_its_values_back_from_the_golden():
+    """Small entries keep values in a golden; a check that read the golden light has their checksums but
+    not their values, so a matching entry is recorded without values and `with_stored_values` fills them
+    from the golden read whole before a run is written."""
+    from dataclasses import replace
+
+    import torch
+
+    from trainguard.core.guard import with_stored_values
+
+    oven = torch.linspace(0, 1, 12).reshape(3, 4)
+    golden = Trajectory()
+    golden.state(oven=oven, lid=torch.ones(2))
+    full = golden.to_run()
+    light = {name: replace(rec, values=None, min=-7.0) for name, rec in full.tensors.items()}  # marked
+    check = Trajectory()
+    check.known = light
+    check.state(oven=oven.clone(), lid=torch.zeros(2))
+    run = check.to_run()
+    assert run.tensors["oven"].values is None and run.tensors["oven"].min == -7.0  # hashed alone
+    assert run.tensors["lid"].values.tolist() == [0.0, 0.0] and run.tensors["lid"].min == 0.0  # recorded
+    filled = with_stored_values(run, full)
+    assert filled.tensors["oven"].values.tolist() == oven.reshape(-1).double().tolist()
+    assert filled.tensors["lid"].values.tolist() == [0.0, 0.0]

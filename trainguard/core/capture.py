@@ -59,9 +59,9 @@ class Trajectory:
         #: `watch` keeps per-event fingerprints only (a plain check); see `trace` for the two depths.
         self.light_trace = light_trace
         #: The golden's state records (a light read, see `store.GoldenStore.read`), when a check knows
-        #: them before the body runs: an entry too large to keep its values whose SHA-256 matches is
-        #: recorded by hashing alone, taking statistics and sketch from the golden (same bits, same
-        #: derived values), so a check pays for hashing and not for statistics.
+        #: them before the body runs: an entry whose SHA-256 matches is recorded by hashing alone,
+        #: taking statistics and sketch from the golden (same bits, same derived values), so a check
+        #: pays for hashing and not for statistics, sketches or float64 copies of stored values.
         self.known: Mapping[str, TensorRecord] | None = None
         self._label = label
         self._steps: dict[str, list[int]] = {}
@@ -231,22 +231,23 @@ class Trajectory:
             shape = tuple(int(d) for d in array.shape)
             numel = int(array.size)
         keep_values = numel <= self.max_values
+        known = self.known.get(name) if self.known else None
+        if known is not None and known.dtype == dtype and known.shape == shape and known.values is None:
+            # The golden, read light, has this entry's checksum, statistics and sketch: when the bits
+            # match, they are the golden's; only the stored values are missing (`guard.settle` takes
+            # them from the golden if the run is ever written).
+            digest = checksum.sha256_hex(array)
+            if digest == known.sha256 and (keep_values or (known.sketch is not None
+                                                           and len(known.sketch) == checksum.STATE_SKETCH)):
+                return replace(known, name=name, kind=kind)
         if keep_values:  # the float64 copy that is stored also gives the statistics: one conversion, not two
             values = checksum.values_float64(array)
             digest, (st, sketch) = checksum.sha256_hex(array), checksum.summarize(values)
         else:
             values = None
-            known = self.known.get(name) if self.known else None
-            if known is not None and known.dtype == dtype and known.shape == shape and known.values is None \
-                    and known.sketch is not None and len(known.sketch) == checksum.STATE_SKETCH:
-                digest = checksum.sha256_hex(array)
-                if digest == known.sha256:
-                    return replace(known, name=name, kind=kind)
-                st, sketch = checksum.summarize(array, checksum.STATE_SKETCH)
-            else:
-                # One call: for large tensors the digest is computed in a background thread while the
-                # statistics and sketch are computed here (same results as separate calls).
-                digest, st, sketch = checksum.describe(array, checksum.STATE_SKETCH)
+            # One call: for large tensors the digest is computed in a background thread while the
+            # statistics and sketch are computed here (same results as separate calls).
+            digest, st, sketch = checksum.describe(array, checksum.STATE_SKETCH)
         return TensorRecord(
             name=name,
             kind=kind,

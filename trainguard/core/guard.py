@@ -209,6 +209,19 @@ class GuardRequest:
     reference: Run | None = None
 
 
+def with_stored_values(run: Run, golden: Run | None) -> Run:
+    """`run` with the stored values of entries recorded by hashing alone (bits equal to the golden's,
+    see `Trajectory.known`) copied from `golden`, read whole, so a run written as a golden is complete."""
+    if golden is None:
+        return run
+    tensors = dict(run.tensors)
+    for name, rec in run.tensors.items():
+        ref = golden.tensors.get(name)
+        if rec.values is None and ref is not None and ref.values is not None and ref.sha256 == rec.sha256:
+            tensors[name] = replace(rec, values=ref.values)
+    return replace(run, tensors=tensors)
+
+
 def _needs_full_trace(request: GuardRequest, run: Run, result: GuardResult) -> bool:
     """A light-traced run gets its full trace when a report will show where it departs (a failed
     check), or when it is kept in a results folder (from which it may be blessed)."""
@@ -264,5 +277,5 @@ def settle(request: GuardRequest) -> tuple[GuardResult, dict[str, Any]]:
     result.message = render_result(result, request.commands.bless(nodeid), hints=request.repeat_hints,
                                    ci=request.ci)
     if request.results is not None and not request.bless and result.outcome not in (IDENTICAL, NONDETERMINISTIC):
-        request.results.write(request.results.folder(nodeid), run)
+        request.results.write(request.results.folder(nodeid), with_stored_values(run, result.reference))
     return result, row_for(result, request.report_dir)
